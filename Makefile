@@ -1,0 +1,17 @@
+# gr-coherer: `make demo` runs the built-in demo, `make test` the test suite.
+# Both first run scripts/bootstrap.sh, which installs whatever is missing.
+VENV := .venv
+PY := $(VENV)/bin/python
+
+.PHONY: setup demo test bench clean
+setup:
+	@bash scripts/bootstrap.sh
+
+demo: setup
+	$(PY) examples/bpsk_squaring_demo.py
+
+test: setup
+	$(PY) -m pytest
+
+clean:
+	rm -rf build $(VENV)

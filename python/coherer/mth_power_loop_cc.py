@@ -1,0 +1,229 @@
+# SPDX-License-Identifier: GPL-3.0-or-later
+"""Closed-loop M-th power carrier recovery block."""
+
+import threading
+from math import pi
+
+import numpy as np
+import pmt
+from gnuradio import gr
+
+from . import _loop_kernel as K
+from . import design, metadata
+
+#: Default averaging length of the signal-power (M2M4) estimator, samples:
+#: at least this many, and at least AVERAGING_PER_BT / (B_L T).
+MIN_AVERAGING = 4096
+AVERAGING_PER_BT = 8.0
+
+
+def default_point_angle(power):
+    """Constellation angle (rad) of one point after correction: pi/4 for QPSK, else 0."""
+    return pi / 4.0 if power == 4 else 0.0
+
+
+class mth_power_loop_cc(gr.sync_block):
+    """Closed-loop M-th power carrier recovery (PLL for M = 1, squaring loop for M = 2,
+    4th/8th-power loops for QPSK/8PSK).
+
+    Args:
+        sample_rate: input rate, samples/s (the loop updates every sample).
+        power: symmetry order M, 1..16 (1 pilot/residual carrier, 2 BPSK, 4 QPSK, 8 8PSK).
+        noise_bw_hz: one-sided loop noise bandwidth B_L in Hz (carrier-phase domain).
+            The discrete loop's actual noise bandwidth equals this value exactly,
+            at any amplitude and SNR (detector normalised by the M2M4 signal estimate).
+            At most 0.1 * sample_rate.
+        damping: damping factor zeta, (0, 10] (orders 2 and 3).
+        loop_order: 1, 2 or 3 (3 follows a frequency ramp with no steady phase error).
+        freq_guess_hz: initial NCO frequency, Hz.
+        freq_range_hz: the NCO frequency is held within +-this, Hz; default and
+            maximum sample_rate / (2 M), the unambiguous range of z^M.
+        acquire: estimate the offset from the spectrum of z^M while unlocked.
+        point_angle: angle (rad) of one constellation point after correction;
+            default 0 (M = 1, 2, 8) or pi/4 (M = 4).
+        tag_interval: add a ``carrier_freq`` tag (pmt double, Hz) every this many
+            samples (0 = never).
+        diagnostics: add outputs 1-3: reference e^{j theta^} (complex), NCO
+            frequency in Hz (float), phase error in rad, carrier-phase units (float).
+
+    Output 0 is x e^{-j theta^}. Input samples that are NaN, Inf or exactly zero
+    are gaps: the NCO coasts on its frequency and the output sample is 0.
+
+    Runtime setters (thread safe): set_noise_bw_hz, set_damping, set_freq_guess_hz.
+    The ``command`` message port takes a pmt dict with any of ``noise_bw_hz``,
+    ``damping``, ``freq_hz``.
+    """
+
+    def __init__(self, sample_rate, power, noise_bw_hz, damping=0.707, loop_order=2,
+                 freq_guess_hz=0.0, freq_range_hz=None, acquire=True, point_angle=None,
+                 tag_interval=0, diagnostics=False, name="mth_power_loop_cc"):
+        design.validate_spec(sample_rate, power, noise_bw_hz, damping, loop_order)
+        self._fs = float(sample_rate)
+        self._power = int(power)
+        max_range = self._fs / (2.0 * self._power)
+        if freq_range_hz is None:
+            freq_range_hz = max_range
+        if not np.isfinite(freq_range_hz) or not 0 < freq_range_hz <= max_range:
+            raise ValueError(
+                f"freq_range_hz must be in (0, sample_rate/(2*power)] = (0, {max_range:g}] Hz, "
+                f"got {freq_range_hz!r}")
+        self._freq_range = float(freq_range_hz)
+        self._check_freq("freq_guess_hz", freq_guess_hz)
+        if point_angle is None:
+            point_angle = default_point_angle(self._power)
+        if not np.isfinite(point_angle):
+            raise ValueError(f"point_angle must be a finite angle in rad, got {point_angle!r}")
+        if int(tag_interval) != tag_interval or tag_interval < 0:
+            raise ValueError(f"tag_interval must be an integer >= 0 samples, got {tag_interval!r}")
+        self._point_angle = float(point_angle)
+        self._tag_interval = int(tag_interval)
+        self._diagnostics = bool(diagnostics)
+        self._acquire = bool(acquire)
+
+        out_sig = [np.complex64]
+        if self._diagnostics:
+            out_sig = [np.complex64, np.complex64, np.float32, np.float32]
+        gr.sync_block.__init__(self, name=name, in_sig=[np.complex64], out_sig=out_sig)
+
+        self._lock = threading.Lock()          # serialises setters / message handler
+        self._spec = (float(noise_bw_hz), float(damping), int(loop_order))
+        self._design = None
+        self._params = None
+        self._publish(*self._spec)
+        self._state = K.new_state()
+        self._state[K.S_FREQ] = self._hz_to_rad(freq_guess_hz)
+        self._pending_freq = None              # re-steer request, consumed by work()
+        self._empty_c = np.zeros(0, np.complex64)
+        self._empty_f = np.zeros(0, np.float32)
+        self._empty_i = np.zeros(0, np.int64)
+        self._empty_d = np.zeros(0, np.float64)
+
+        self.message_port_register_in(metadata.COMMAND_PORT_PMT)
+        self.set_msg_handler(metadata.COMMAND_PORT_PMT, self._handle_command)
+        self._warm_up()
+
+    # --- helpers -------------------------------------------------------------------
+    def _hz_to_rad(self, hz):
+        return 2.0 * pi * float(hz) / self._fs
+
+    def _check_freq(self, name, hz):
+        if not np.isfinite(hz) or abs(hz) > self._freq_range:
+            raise ValueError(f"{name} must be within +-freq_range_hz = +-{self._freq_range:g} Hz, got {hz!r}")
+
+    def _publish(self, noise_bw_hz, damping, loop_order):
+        """Design the loop and publish gains in one atomic assignment."""
+        d = design.design_loop(self._fs, self._power, noise_bw_hz, damping, loop_order)
+        p = np.zeros(K.PARAMS_SIZE)
+        p[K.P_K1], p[K.P_K2], p[K.P_K3] = d.k1, d.k2, d.k3
+        rot = np.exp(-1j * self._power * self._point_angle)
+        p[K.P_ROT_RE], p[K.P_ROT_IM] = rot.real, rot.imag
+        limit = self._hz_to_rad(self._freq_range)
+        p[K.P_FMIN], p[K.P_FMAX] = -limit, limit
+        p[K.P_ALPHA] = 1.0 / max(MIN_AVERAGING, AVERAGING_PER_BT / d.bt)
+        p[K.P_STEP_IN_FREQ] = 1.0 if loop_order == 1 else 0.0
+        self._params, self._design = p, d      # work() reads self._params once per call
+
+    def _warm_up(self):
+        """Compile the kernel now rather than in the first work() call."""
+        x = np.ones(4, np.complex64)
+        st = K.new_state()
+        self._run_kernel(x, np.empty(4, np.complex64), st, self._params, diag=None)
+
+    def _run_kernel(self, x, out, state, params, diag, marks=None, mark_freq=None):
+        if diag is None:
+            ref, freq, err = self._empty_c, self._empty_f, self._empty_f
+        else:
+            ref, freq, err = diag
+        if marks is None:
+            marks, mark_freq = self._empty_i, self._empty_d
+        K.mth_power_loop(x, out, ref, freq, err, marks, mark_freq, state, params, self._power)
+
+    # --- runtime control -------------------------------------------------------------
+    def set_noise_bw_hz(self, noise_bw_hz):
+        """Change the loop noise bandwidth B_L (Hz) without disturbing the phase."""
+        with self._lock:
+            _, damping, order = self._spec
+            self._publish(float(noise_bw_hz), damping, order)
+            self._spec = (float(noise_bw_hz), damping, order)
+
+    def set_damping(self, damping):
+        """Change the damping factor zeta without disturbing the phase."""
+        with self._lock:
+            bw, _, order = self._spec
+            self._publish(bw, float(damping), order)
+            self._spec = (bw, float(damping), order)
+
+    def set_freq_guess_hz(self, freq_hz):
+        """Re-steer the NCO to ``freq_hz`` (Hz) at the start of the next work() call."""
+        self._check_freq("freq_guess_hz", freq_hz)
+        self._pending_freq = self._hz_to_rad(freq_hz)
+
+    def _handle_command(self, msg):
+        """``command`` port: pmt dict with any of noise_bw_hz, damping, freq_hz.
+        Bad messages are logged and ignored (never raised on the scheduler thread)."""
+        try:
+            if not pmt.is_dict(msg):
+                raise ValueError("command message must be a pmt dict")
+            d = pmt.to_python(msg)
+            if metadata.CMD_NOISE_BW_HZ in d:
+                self.set_noise_bw_hz(float(d[metadata.CMD_NOISE_BW_HZ]))
+            if metadata.CMD_DAMPING in d:
+                self.set_damping(float(d[metadata.CMD_DAMPING]))
+            if metadata.CMD_FREQ_HZ in d:
+                self.set_freq_guess_hz(float(d[metadata.CMD_FREQ_HZ]))
+        except (ValueError, TypeError) as exc:
+            self.logger.warn(f"ignored command {msg}: {exc}")
+
+    # --- getters ---------------------------------------------------------------------
+    def noise_bw_hz(self):
+        """Loop noise bandwidth B_L, Hz."""
+        return self._spec[0]
+
+    def damping(self):
+        """Damping factor zeta."""
+        return self._spec[1]
+
+    def loop_design(self):
+        """The :class:`coherer.design.LoopDesign` in use."""
+        return self._design
+
+    def frequency_hz(self):
+        """Current NCO frequency estimate, Hz."""
+        return float(self._state[K.S_FREQ]) * self._fs / (2.0 * pi)
+
+    def phase(self):
+        """Current NCO phase theta^, rad in [-pi, pi)."""
+        return float(self._state[K.S_PHASE])
+
+    def gap_samples(self):
+        """Number of input samples treated as gaps (NaN, Inf or zero) so far."""
+        return int(self._state[K.S_GAPS])
+
+    # --- streaming -------------------------------------------------------------------
+    def work(self, input_items, output_items):
+        x = input_items[0]
+        n = len(x)
+        params = self._params
+        pending = self._pending_freq
+        if pending is not None:
+            self._pending_freq = None
+            self._state[K.S_FREQ] = pending
+        diag = None
+        if self._diagnostics and len(output_items) == 4:
+            diag = (output_items[1], output_items[2], output_items[3])
+        marks = mark_freq = None
+        if self._tag_interval:
+            start = self.nitems_written(0)
+            first = (-start) % self._tag_interval
+            marks = np.arange(first, n, self._tag_interval, dtype=np.int64)
+            mark_freq = np.empty(len(marks))
+        self._run_kernel(x, output_items[0], self._state, params, diag, marks, mark_freq)
+        if diag is not None:
+            np.multiply(diag[1], self._fs / (2.0 * pi), out=diag[1])   # rad/sample -> Hz
+        if marks is not None:
+            start = self.nitems_written(0)
+            scale = self._fs / (2.0 * pi)
+            for i, f in zip(marks, mark_freq):
+                self.add_item_tag(0, start + int(i), metadata.CARRIER_FREQ_PMT,
+                                  pmt.from_double(float(f) * scale))
+        return n

@@ -39,7 +39,19 @@ S_M4 = 4         # exponential average of |x|^4
 S_MW = 5         # exponential average of 1 (bias correction of M2, M4)
 S_GAPS = 6       # count of gap samples (non-finite or zero) seen
 S_LAST_STEP = 7  # proportional part K1 e of the last NCO step, rad/sample
-STATE_SIZE = 8
+S_LOCK_SUM = 8   # lock statistic: running sum of cos(M arg y) in this window
+S_LOCK_N = 9     # valid samples in this window
+S_LOCK_POS = 10  # samples into this window
+S_LOCKED = 11    # 1.0 locked, 0.0 not
+S_METRIC = 12    # statistic of the last complete window
+S_LP_RE = 13     # low-passed unit detector phasor
+S_LP_IM = 14
+S_PSI = 15       # unwrapped angle of the low-passed phasor, rad (M domain)
+S_PSI_LAST = 16  # last wrapped angle
+S_PSI_REF = 17   # current stable point 2*pi*k, rad
+S_SLIP_POS = 18  # samples since the last angle evaluation
+S_SLIPS = 19     # signed slips declared so far
+STATE_SIZE = 20
 
 # params[] layout ------------------------------------------------------------------
 P_K1 = 0
@@ -51,15 +63,21 @@ P_FMIN = 5       # frequency register limits, rad/sample
 P_FMAX = 6
 P_ALPHA = 7      # moment averaging coefficient (1 / averaging length)
 P_STEP_IN_FREQ = 8   # 1.0: report the whole NCO step as frequency (1st order), else 0.0
-PARAMS_SIZE = 9
+P_LOCK_WINDOW = 9    # lock-indicator window, samples
+P_LOCK_Z_ON = 10     # lock when statistic >= z_on / sqrt(N)
+P_LOCK_Z_OFF = 11    # unlock when statistic < z_off / sqrt(N)
+P_SLIP_BETA = 12     # low-pass coefficient of the slip tracker
+P_SLIP_DECIM = 13    # evaluate the slip tracker's angle every this many samples
+PARAMS_SIZE = 14
 
 S_FLOOR = 10.0 ** (-25.0 / 10.0)   # signal-power floor relative to M2 (-25 dB)
 LIMIT = 100.0                      # sample power limit relative to M2 (+20 dB)
 TWO_PI = 2.0 * np.pi
+SLIP_DEPARTURE = 1.5 * np.pi       # M-domain departure that declares a slip
 
 
 def new_state():
-    """A fresh state array: NCO at 0 rad and 0 rad/sample, no moments yet."""
+    """A fresh state array: NCO at 0 rad and 0 rad/sample, no moments yet, unlocked."""
     return np.zeros(STATE_SIZE, dtype=np.float64)
 
 
@@ -77,14 +95,17 @@ def _cpow(z, m):
 
 
 @njit(nogil=True, cache=True)
-def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, state, params, power):
+def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count, state, params, power):
     """Run the loop over ``x`` (complex64), writing the corrected samples to ``out``.
 
     ``ref``, ``freq``, ``err`` are the diagnostic outputs (reference phasor,
-    frequency register in rad/sample, phase error in rad, carrier-phase units);
-    pass zero-length arrays to skip them. ``marks`` holds increasing sample
-    indices (relative to ``x``) at which the frequency register is recorded
-    into ``mark_freq`` (rad/sample). ``state`` is updated in place.
+    frequency in rad/sample, phase error in rad, carrier-phase units); pass
+    zero-length arrays to skip them. ``marks`` holds increasing sample indices
+    (relative to ``x``) at which the frequency is recorded into ``mark_freq``
+    (rad/sample). Declared cycle slips are written to ``slip_at`` (sample index
+    relative to ``x``) and ``slip_count`` (signed, units of 2*pi/M); both must
+    hold ``len(x)`` entries. Returns the number of slips declared. ``state`` is
+    updated in place.
     """
     k1 = params[P_K1]
     k2 = params[P_K2]
@@ -94,7 +115,13 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, state, params, powe
     fmax = params[P_FMAX]
     alpha = params[P_ALPHA]
     step_in_freq = params[P_STEP_IN_FREQ]
+    lock_window = params[P_LOCK_WINDOW]
+    z_on = params[P_LOCK_Z_ON]
+    z_off = params[P_LOCK_Z_OFF]
+    beta = params[P_SLIP_BETA]
+    slip_decim = params[P_SLIP_DECIM]
     inv_power = 1.0 / power
+    quarter_power = 0.25 * power
 
     phase = state[S_PHASE]
     acc1 = state[S_FREQ]
@@ -104,12 +131,25 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, state, params, powe
     mw = state[S_MW]
     gaps = state[S_GAPS]
     last_step = state[S_LAST_STEP]
+    lock_sum = state[S_LOCK_SUM]
+    lock_n = state[S_LOCK_N]
+    lock_pos = state[S_LOCK_POS]
+    locked = state[S_LOCKED]
+    metric = state[S_METRIC]
+    lp_re = state[S_LP_RE]
+    lp_im = state[S_LP_IM]
+    psi = state[S_PSI]
+    psi_last = state[S_PSI_LAST]
+    psi_ref = state[S_PSI_REF]
+    slip_pos = state[S_SLIP_POS]
+    slips = state[S_SLIPS]
 
     want_ref = ref.shape[0] > 0
     want_freq = freq.shape[0] > 0
     want_err = err.shape[0] > 0
     n_marks = marks.shape[0]
     next_mark = 0
+    n_slips = 0
 
     for n in range(x.shape[0]):
         while next_mark < n_marks and marks[next_mark] == n:
@@ -117,37 +157,34 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, state, params, powe
             next_mark += 1
         c = np.cos(phase)
         s = np.sin(phase)
-        xn = complex(x[n].real, x[n].imag)
-        p = xn.real * xn.real + xn.imag * xn.imag
+        xr = np.float64(x[n].real)
+        xi = np.float64(x[n].imag)
+        p = xr * xr + xi * xi
+        e_theta = 0.0
         if not np.isfinite(p) or p == 0.0:
             # gap: coast on the frequency register, output nothing
             out[n] = 0.0
             gaps += 1.0
             last_step = 0.0
-            e_theta = 0.0
         else:
-            y = complex(xn.real * c + xn.imag * s, xn.imag * c - xn.real * s)
+            y = complex(xr * c + xi * s, xi * c - xr * s)
             out[n] = y
             # limiter against spikes (only once the moments exist)
             if mw > 0.0:
                 cap = LIMIT * m2 / mw
                 if p > cap:
-                    scale = np.sqrt(cap / p)
-                    y *= scale
+                    y *= np.sqrt(cap / p)
                     p = cap
-            # M2M4 moments and signal-power estimate
+            # M2M4 moments; detector on the power-normalised sample
             m2 += alpha * (p - m2)
             m4 += alpha * (p * p - m4)
             mw += alpha * (1.0 - mw)
             mm2 = m2 / mw
-            mm4 = m4 / mw
-            sig2 = 2.0 * mm2 * mm2 - mm4
-            floor2 = S_FLOOR * S_FLOOR * mm2 * mm2
-            if sig2 < floor2:
-                sig2 = floor2
-            a_m = sig2 ** (0.25 * power)            # S^(M/2) with S = sqrt(sig2)
-            d = _cpow(y, power) * rot
-            e = d.imag / a_m
+            sig2 = 2.0 - (m4 / mw) / (mm2 * mm2)   # (S / M2)^2 from M2M4
+            if sig2 < S_FLOOR * S_FLOOR:
+                sig2 = S_FLOOR * S_FLOOR
+            d = _cpow(y * (1.0 / np.sqrt(mm2)), power) * rot
+            e = d.imag / sig2 ** quarter_power   # / (S/M2)^(M/2): mean sin(M phi)
             acc2 += k3 * e
             acc1 += k2 * e + acc2
             if acc1 > fmax:
@@ -160,7 +197,17 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, state, params, powe
                     acc2 = 0.0
             last_step = k1 * e
             phase += last_step
-            e_theta = np.arctan2(d.imag, d.real) * inv_power if want_err else 0.0
+            # lock statistic and slip tracker on the unit phasor d/|d|
+            mag = np.sqrt(d.real * d.real + d.imag * d.imag)
+            if mag > 0.0:
+                ur = d.real / mag
+                ui = d.imag / mag
+                lock_sum += ur
+                lock_n += 1.0
+                lp_re += beta * (ur - lp_re)
+                lp_im += beta * (ui - lp_im)
+            if want_err:
+                e_theta = np.arctan2(d.imag, d.real) * inv_power
         if want_ref:
             ref[n] = complex(c, s)
         if want_freq:
@@ -170,6 +217,44 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, state, params, powe
         phase += acc1
         if phase >= np.pi or phase < -np.pi:
             phase -= TWO_PI * np.floor((phase + np.pi) / TWO_PI)
+
+        # slip tracker: unwrap the low-passed angle every slip_decim samples
+        slip_pos += 1.0
+        if slip_pos >= slip_decim:
+            slip_pos = 0.0
+            a = np.arctan2(lp_im, lp_re)
+            da = a - psi_last
+            if da > np.pi:
+                da -= TWO_PI
+            elif da < -np.pi:
+                da += TWO_PI
+            psi += da
+            psi_last = a
+            if locked > 0.0:
+                dev = psi - psi_ref
+                if dev > SLIP_DEPARTURE or dev < -SLIP_DEPARTURE:
+                    step = 1.0 if dev > 0.0 else -1.0
+                    psi_ref += step * TWO_PI
+                    slips -= step
+                    slip_at[n_slips] = n
+                    slip_count[n_slips] = -int(step)
+                    n_slips += 1
+            else:
+                psi_ref = TWO_PI * np.floor(psi / TWO_PI + 0.5)
+
+        # lock indicator: decide at the end of each window
+        lock_pos += 1.0
+        if lock_pos >= lock_window:
+            if lock_n >= 0.5 * lock_window:
+                metric = lock_sum / lock_n
+                root_n = np.sqrt(lock_n)
+                if locked > 0.0:
+                    locked = 1.0 if metric * root_n >= z_off else 0.0
+                else:
+                    locked = 1.0 if metric * root_n >= z_on else 0.0
+            lock_sum = 0.0
+            lock_n = 0.0
+            lock_pos = 0.0
     while next_mark < n_marks:
         mark_freq[next_mark] = acc1 + step_in_freq * last_step
         next_mark += 1
@@ -182,4 +267,16 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, state, params, powe
     state[S_MW] = mw
     state[S_GAPS] = gaps
     state[S_LAST_STEP] = last_step
-    return x.shape[0]
+    state[S_LOCK_SUM] = lock_sum
+    state[S_LOCK_N] = lock_n
+    state[S_LOCK_POS] = lock_pos
+    state[S_LOCKED] = locked
+    state[S_METRIC] = metric
+    state[S_LP_RE] = lp_re
+    state[S_LP_IM] = lp_im
+    state[S_PSI] = psi
+    state[S_PSI_LAST] = psi_last
+    state[S_PSI_REF] = psi_ref
+    state[S_SLIP_POS] = slip_pos
+    state[S_SLIPS] = slips
+    return n_slips

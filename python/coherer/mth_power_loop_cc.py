@@ -8,13 +8,23 @@ import numpy as np
 import pmt
 from gnuradio import gr
 
+from scipy.stats import norm
+
 from . import _loop_kernel as K
-from . import design, metadata
+from . import acquisition, design, metadata
 
 #: Default averaging length of the signal-power (M2M4) estimator, samples:
 #: at least this many, and at least AVERAGING_PER_BT / (B_L T).
 MIN_AVERAGING = 4096
 AVERAGING_PER_BT = 8.0
+#: Internal lock indicator: false-lock probability per window on noise, and the
+#: (higher) probability level below which a locked loop is declared unlocked.
+LOCK_P_FALSE = 1e-6
+UNLOCK_P_LEVEL = 1e-2
+#: Slip tracker low-pass coefficient per unit B_L T.
+SLIP_BETA_PER_BT = 4.0
+#: Most steering events remembered by acquisition_log().
+ACQUISITION_LOG = 100
 
 
 def default_point_angle(power):
@@ -38,7 +48,11 @@ class mth_power_loop_cc(gr.sync_block):
         freq_guess_hz: initial NCO frequency, Hz.
         freq_range_hz: the NCO frequency is held within +-this, Hz; default and
             maximum sample_rate / (2 M), the unambiguous range of z^M.
-        acquire: estimate the offset from the spectrum of z^M while unlocked.
+        acquire: wide acquisition. While the internal lock indicator says
+            unlocked, at the end of every acquisition block (FFT length: the
+            power of two >= 4 / (B_L T), counted from the stream start) the
+            offset is estimated from the spectrum of z^M and the NCO is steered
+            there. False: a plain loop with its natural pull-in.
         point_angle: angle (rad) of one constellation point after correction;
             default 0 (M = 1, 2, 8) or pi/4 (M = 4).
         tag_interval: add a ``carrier_freq`` tag (pmt double, Hz) every this many
@@ -48,6 +62,16 @@ class mth_power_loop_cc(gr.sync_block):
 
     Output 0 is x e^{-j theta^}. Input samples that are NaN, Inf or exactly zero
     are gaps: the NCO coasts on its frequency and the output sample is 0.
+
+    Internal lock indicator (``locked()``): the phase-only statistic
+    mean cos(M arg y - M point_angle) over windows of a quarter acquisition
+    block; lock when it exceeds Qinv(1e-6)/sqrt(2N) (false-lock probability
+    1e-6 per window on noise), unlock below Qinv(1e-2)/sqrt(2N).
+
+    Tags: ``cycle_slip`` (pmt long, signed slips in units of 2*pi/M; +1 = the
+    NCO phase advanced by 2*pi/M relative to the carrier) on the sample where a
+    slip is declared; ``carrier_freq`` (pmt double, Hz) every ``tag_interval``
+    samples.
 
     Runtime setters (thread safe): set_noise_bw_hz, set_damping, set_freq_guess_hz.
     The ``command`` message port takes a pmt dict with any of ``noise_bw_hz``,
@@ -87,6 +111,11 @@ class mth_power_loop_cc(gr.sync_block):
 
         self._lock = threading.Lock()          # serialises setters / message handler
         self._spec = (float(noise_bw_hz), float(damping), int(loop_order))
+        # acquisition FFT length and lock window are fixed at construction
+        self._nfft = acquisition.fft_length(noise_bw_hz, self._fs)
+        self._lock_window = max(64, self._nfft // 4)
+        self._acq_buf = np.zeros(self._nfft, np.complex64)
+        self._acq_log = []
         self._design = None
         self._params = None
         self._publish(*self._spec)
@@ -97,6 +126,8 @@ class mth_power_loop_cc(gr.sync_block):
         self._empty_f = np.zeros(0, np.float32)
         self._empty_i = np.zeros(0, np.int64)
         self._empty_d = np.zeros(0, np.float64)
+        self._slip_at = np.zeros(8192, np.int64)
+        self._slip_count = np.zeros(8192, np.int64)
 
         self.message_port_register_in(metadata.COMMAND_PORT_PMT)
         self.set_msg_handler(metadata.COMMAND_PORT_PMT, self._handle_command)
@@ -121,6 +152,12 @@ class mth_power_loop_cc(gr.sync_block):
         p[K.P_FMIN], p[K.P_FMAX] = -limit, limit
         p[K.P_ALPHA] = 1.0 / max(MIN_AVERAGING, AVERAGING_PER_BT / d.bt)
         p[K.P_STEP_IN_FREQ] = 1.0 if loop_order == 1 else 0.0
+        p[K.P_LOCK_WINDOW] = self._lock_window
+        p[K.P_LOCK_Z_ON] = norm.isf(LOCK_P_FALSE) / np.sqrt(2.0)
+        p[K.P_LOCK_Z_OFF] = norm.isf(UNLOCK_P_LEVEL) / np.sqrt(2.0)
+        beta = min(0.5, SLIP_BETA_PER_BT * d.bt)
+        p[K.P_SLIP_BETA] = beta
+        p[K.P_SLIP_DECIM] = max(1, int(1.0 / (16.0 * beta)))
         self._params, self._design = p, d      # work() reads self._params once per call
 
     def _warm_up(self):
@@ -130,13 +167,30 @@ class mth_power_loop_cc(gr.sync_block):
         self._run_kernel(x, np.empty(4, np.complex64), st, self._params, diag=None)
 
     def _run_kernel(self, x, out, state, params, diag, marks=None, mark_freq=None):
+        """Run the kernel on one segment; returns the number of slips declared."""
         if diag is None:
             ref, freq, err = self._empty_c, self._empty_f, self._empty_f
         else:
             ref, freq, err = diag
         if marks is None:
             marks, mark_freq = self._empty_i, self._empty_d
-        K.mth_power_loop(x, out, ref, freq, err, marks, mark_freq, state, params, self._power)
+        if len(self._slip_at) < len(x):
+            self._slip_at = np.zeros(len(x), np.int64)
+            self._slip_count = np.zeros(len(x), np.int64)
+        return K.mth_power_loop(x, out, ref, freq, err, marks, mark_freq,
+                                self._slip_at, self._slip_count, state, params, self._power)
+
+    def _steer(self, sample):
+        """End of an acquisition block: if unlocked, estimate the offset from z^M and steer."""
+        if self._state[K.S_LOCKED] > 0.0:
+            return
+        f = acquisition.estimate_offset(self._acq_buf, self._power, self._fs, self._freq_range)
+        if f is None:
+            return
+        self._state[K.S_FREQ] = self._hz_to_rad(f)
+        self._state[K.S_ACC2] = 0.0
+        self._acq_log.append((int(sample), f))
+        del self._acq_log[:-ACQUISITION_LOG]
 
     # --- runtime control -------------------------------------------------------------
     def set_noise_bw_hz(self, noise_bw_hz):
@@ -195,6 +249,26 @@ class mth_power_loop_cc(gr.sync_block):
         """Current NCO phase theta^, rad in [-pi, pi)."""
         return float(self._state[K.S_PHASE])
 
+    def locked(self):
+        """True when the internal lock indicator says the loop is locked."""
+        return bool(self._state[K.S_LOCKED] > 0.0)
+
+    def lock_metric(self):
+        """Internal lock statistic of the last complete window (about 1 locked, 0 on noise)."""
+        return float(self._state[K.S_METRIC])
+
+    def cycle_slips(self):
+        """Signed total of cycle slips declared so far, units of 2*pi/M."""
+        return int(self._state[K.S_SLIPS])
+
+    def acquisition_fft_length(self):
+        """Samples per acquisition attempt (FFT length); also 4x the lock window."""
+        return self._nfft
+
+    def acquisition_log(self):
+        """Recent steering events as (absolute sample, frequency Hz), oldest first."""
+        return list(self._acq_log)
+
     def gap_samples(self):
         """Number of input samples treated as gaps (NaN, Inf or zero) so far."""
         return int(self._state[K.S_GAPS])
@@ -203,27 +277,47 @@ class mth_power_loop_cc(gr.sync_block):
     def work(self, input_items, output_items):
         x = input_items[0]
         n = len(x)
+        start = self.nitems_read(0)
         params = self._params
         pending = self._pending_freq
         if pending is not None:
             self._pending_freq = None
             self._state[K.S_FREQ] = pending
+            self._state[K.S_ACC2] = 0.0
+        with_diag = self._diagnostics and len(output_items) == 4
+        pos = 0
+        while pos < n:
+            end = n
+            if self._acquire:           # segments end on absolute FFT-block boundaries
+                end = min(n, pos + self._nfft - (start + pos) % self._nfft)
+                first = (start + pos) % self._nfft
+                self._acq_buf[first:first + end - pos] = x[pos:end]
+            self._process(x, output_items, pos, end, start, params, with_diag)
+            if self._acquire and (start + end) % self._nfft == 0:
+                self._steer(start + end)
+            pos = end
+        return n
+
+    def _process(self, x, output_items, pos, end, start, params, with_diag):
+        """Run the kernel on x[pos:end] and place this segment's tags."""
         diag = None
-        if self._diagnostics and len(output_items) == 4:
-            diag = (output_items[1], output_items[2], output_items[3])
+        if with_diag:
+            diag = (output_items[1][pos:end], output_items[2][pos:end], output_items[3][pos:end])
         marks = mark_freq = None
         if self._tag_interval:
-            start = self.nitems_written(0)
-            first = (-start) % self._tag_interval
-            marks = np.arange(first, n, self._tag_interval, dtype=np.int64)
+            first = (-(start + pos)) % self._tag_interval
+            marks = np.arange(first, end - pos, self._tag_interval, dtype=np.int64)
             mark_freq = np.empty(len(marks))
-        self._run_kernel(x, output_items[0], self._state, params, diag, marks, mark_freq)
+        n_slips = self._run_kernel(x[pos:end], output_items[0][pos:end], self._state, params,
+                                   diag, marks, mark_freq)
         if diag is not None:
             np.multiply(diag[1], self._fs / (2.0 * pi), out=diag[1])   # rad/sample -> Hz
+        base = start + pos
         if marks is not None:
-            start = self.nitems_written(0)
             scale = self._fs / (2.0 * pi)
             for i, f in zip(marks, mark_freq):
-                self.add_item_tag(0, start + int(i), metadata.CARRIER_FREQ_PMT,
+                self.add_item_tag(0, base + int(i), metadata.CARRIER_FREQ_PMT,
                                   pmt.from_double(float(f) * scale))
-        return n
+        for i in range(n_slips):
+            self.add_item_tag(0, base + int(self._slip_at[i]), metadata.CYCLE_SLIP_PMT,
+                              pmt.from_long(int(self._slip_count[i])))

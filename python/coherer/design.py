@@ -34,10 +34,10 @@ bandwidth of the discrete loop equals the requested one to 1e-9.
 
 import warnings
 from dataclasses import dataclass
-from math import comb, factorial, inf, pi, sqrt
+from math import comb, factorial, fsum, inf, pi, sqrt
 
 import numpy as np
-from scipy import optimize, signal
+from scipy import optimize, signal, special
 
 #: Largest B_L * T (noise bandwidth over sample rate) the blocks accept.
 MAX_BT = 0.1
@@ -334,6 +334,386 @@ def max_trackable_ramp_hz_per_s(design):
     return phi_max * design.g_gains[1] * design.sample_rate ** 2 / (2.0 * pi)
 
 
+# --- acquisition (REFERENCES 2.2) -----------------------------------------------------------
+#
+# An M-th power loop tracks psi = M phi with a unit-amplitude sine detector and the same
+# loop-gain products g K_i as its linear model, so the classical results for a sine-detector
+# PLL hold in the psi domain. A carrier offset df (Hz) appears there as M df: every frequency
+# limit below is the psi-domain one divided by M, and pull-in times use M df.
+
+#: Rice's phase-settling rule ``T_PL ~ 1.3 / B_L`` (REFERENCES 2.2), seconds times Hz.
+RICE_PHASE_SETTLING = 1.3
+
+#: Acquisition verdicts (:attr:`Acquisition.reason`).
+ACQ_WITHIN_LOCK_IN = "within the lock-in range: locks without slipping a cycle"
+ACQ_PULLS_IN = "beyond the lock-in range: the loop pulls in by itself, slipping cycles meanwhile"
+ACQ_TOO_SLOW = "beyond the lock-in range and the pull-in time exceeds the budget"
+ACQ_BEYOND_HOLD = "beyond the first-order loop's hold range: it never locks"
+ACQ_BEYOND_RANGE = "beyond the unambiguous range fs/(2M): the loop would lock to an alias"
+
+
+def unambiguous_range_hz(sample_rate, power):
+    """Largest carrier offset (Hz) an M-th power loop can tell from its aliases: ``fs / (2 M)``."""
+    return sample_rate / (2.0 * power)
+
+
+def lock_in_range_rad_s(wn, damping):
+    """Gardner's lock-in estimate ``2 zeta wn`` (rad/s) of a 2nd-order type-2 loop.
+
+    An engineering estimate; it can be optimistic (Kuznetsov et al. 2023, REFERENCES 2.2).
+    """
+    return 2.0 * damping * wn
+
+
+def pull_out_rad_s(wn, damping):
+    """Gardner's pull-out limit ``1.8 wn (zeta + 1)`` (rad/s): largest frequency step survived without a slip."""
+    return 1.8 * wn * (damping + 1.0)
+
+
+def pull_in_time_gardner_s(offset_hz, wn, damping):
+    """Gardner's pull-in time ``dw^2 / (2 zeta wn^3)`` (s) of a type-2 loop, ``dw = 2 pi offset_hz``."""
+    dw = 2.0 * pi * offset_hz
+    return dw * dw / (2.0 * damping * wn ** 3)
+
+
+def pull_in_time_rice_s(offset_hz, noise_bw_hz):
+    """Rice's frequency pull-in rule ``4 df^2 / B_L^3`` (s), offset and B_L in Hz."""
+    return 4.0 * offset_hz * offset_hz / noise_bw_hz ** 3
+
+
+def phase_settling_time_rice_s(noise_bw_hz):
+    """Rice's phase-settling rule ``1.3 / B_L`` (s)."""
+    return RICE_PHASE_SETTLING / noise_bw_hz
+
+
+def acquisition_wn(design):
+    """Angular frequency (rad/s) the acquisition formulas use for ``design``.
+
+    Order 1: the loop gain ``g K1 fs``. Order 2: the natural frequency wn. Order 3: no
+    published formula; the 2nd-order loop with the same actual noise bandwidth and damping
+    stands in for it (an estimate).
+    """
+    if design.loop_order == 1:
+        return design.g_gains[0] * design.sample_rate
+    if design.loop_order == 2:
+        return design.natural_frequency
+    return natural_frequency(design.actual_bt * design.sample_rate, design.damping)
+
+
+def lock_in_range_hz(design):
+    """Carrier offset (Hz) within which the loop locks without slipping a cycle.
+
+    Order 1: the exact hold range ``g K1 fs / (2 pi M)`` (the sine detector saturates beyond it).
+    Orders 2 and 3: ``2 zeta wn / (2 pi M)``, an engineering estimate (REFERENCES 2.2).
+    """
+    wn = acquisition_wn(design)
+    if design.loop_order == 1:
+        return wn / (2.0 * pi * design.power)
+    return lock_in_range_rad_s(wn, design.damping) / (2.0 * pi * design.power)
+
+
+def pull_out_hz(design):
+    """Largest carrier frequency step (Hz) the locked loop survives without a slip.
+
+    Order 1: the hold range. Orders 2 and 3: ``1.8 wn (zeta + 1) / (2 pi M)`` (Gardner).
+    """
+    if design.loop_order == 1:
+        return lock_in_range_hz(design)
+    return pull_out_rad_s(acquisition_wn(design), design.damping) / (2.0 * pi * design.power)
+
+
+def pull_in_time_s(design, offset_hz):
+    """Frequency pull-in time (s) for a carrier offset (Hz): Gardner's ``dw^2 / (2 zeta wn^3)``
+    with ``dw = 2 pi M offset`` (the offset the psi-domain loop sees).
+
+    ``inf`` beyond the unambiguous range and, for a first-order loop, beyond its hold range
+    (0 within it: a first-order loop has no frequency pull-in).
+    """
+    offset = abs(offset_hz)
+    if offset > unambiguous_range_hz(design.sample_rate, design.power):
+        return inf
+    if design.loop_order == 1:
+        return 0.0 if offset <= lock_in_range_hz(design) else inf
+    return pull_in_time_gardner_s(design.power * offset, acquisition_wn(design), design.damping)
+
+
+@dataclass(frozen=True)
+class Acquisition:
+    """What it takes to acquire a carrier offset; frequencies in Hz, times in s."""
+    offset_hz: float
+    lock_in_hz: float       #: lock-in range (engineering estimate for orders 2 and 3)
+    pull_out_hz: float      #: largest frequency step survived while locked
+    unambiguous_hz: float   #: fs / (2 M)
+    pull_in_s: float        #: Gardner's pull-in time (the one reported)
+    pull_in_rice_s: float   #: Rice's 4 (M df)^2 / B_L^3, for comparison
+    lock_time_s: float      #: pull_in_s + Rice's phase settling 1.3 / B_L
+    budget_s: float         #: pull-in time budget (inf: none stated)
+    needed: bool            #: an acquisition aid is needed (the loop alone cannot acquire in budget)
+    reason: str             #: one of the ACQ_* verdicts
+
+
+def assess_acquisition(design, offset_hz, budget_s=None):
+    """Whether the loop acquires a carrier offset (Hz) by itself within ``budget_s`` seconds.
+
+    ``needed`` is true when the offset is beyond the unambiguous range fs/(2M), beyond a
+    first-order loop's hold range, or when the pull-in time exceeds the budget.
+    """
+    budget = inf if budget_s is None else float(budget_s)
+    if not budget > 0.0:
+        raise ValueError(f"budget_s must be > 0 s, got {budget_s!r}")
+    offset = abs(float(offset_hz))
+    noise_bw = design.actual_bt * design.sample_rate
+    unambiguous = unambiguous_range_hz(design.sample_rate, design.power)
+    lock_in = lock_in_range_hz(design)
+    pull_in = pull_in_time_s(design, offset)
+    if offset > unambiguous:
+        needed, reason = True, ACQ_BEYOND_RANGE
+    elif offset <= lock_in:
+        needed, reason = False, ACQ_WITHIN_LOCK_IN
+    elif design.loop_order == 1:
+        needed, reason = True, ACQ_BEYOND_HOLD
+    elif pull_in > budget:
+        needed, reason = True, ACQ_TOO_SLOW
+    else:
+        needed, reason = False, ACQ_PULLS_IN
+    return Acquisition(
+        offset_hz=offset, lock_in_hz=lock_in, pull_out_hz=pull_out_hz(design), unambiguous_hz=unambiguous,
+        pull_in_s=pull_in, pull_in_rice_s=pull_in_time_rice_s(design.power * offset, noise_bw),
+        lock_time_s=pull_in + phase_settling_time_rice_s(noise_bw), budget_s=budget,
+        needed=needed, reason=reason)
+
+
+# --- cycle slips and nonlinear jitter (REFERENCES 3 and 5) -------------------------------------
+
+#: Empirical second-order correction: a 2nd-order loop (zeta 0.707) slips about as often as a
+#: first-order loop at a loop SNR this many dB lower (simulated band of REFERENCES 5).
+SECOND_ORDER_SLIP_SHIFT_DB = 1.0
+
+
+def loop_snr(power, esn0, bt):
+    """Loop SNR in the psi = M phi domain, ``rho_psi = 1 / (B_L T V_M)`` (linear; REFERENCES 5)."""
+    return 1.0 / (bt * mth_power_noise(power, esn0))
+
+
+def slip_time_bt_first_order(rho):
+    """Viterbi's mean time to the first slip of a first-order loop, as ``B_L T_slip = pi^2 rho I0(rho)^2 / 2``.
+
+    Dimensionless (divide by B_L in Hz for seconds); ``inf`` when it overflows a float.
+    """
+    rho = float(rho)
+    if rho < 0.0 or not np.isfinite(rho):
+        raise ValueError(f"rho must be a finite loop SNR >= 0, got {rho!r}")
+    if rho == 0.0:
+        return 0.0
+    log_value = np.log(pi * pi * rho / 2.0) + 2.0 * (np.log(special.i0e(rho)) + rho)
+    return float(np.exp(log_value)) if log_value < 700.0 else inf
+
+
+def mean_time_between_slips_s(design, esn0):
+    """Mean time (s) between cycle slips of 2 pi / M at linear Es/N0 ``esn0`` per loop update.
+
+    Viterbi's first-order formula with the M-th power mapping ``rho_psi = 1/(B_L T V_M)``
+    (REFERENCES 5), using the exact discrete noise bandwidth. For orders 2 and 3 the loop SNR
+    is first lowered by :data:`SECOND_ORDER_SLIP_SHIFT_DB`, an empirical correction from
+    simulations of a 2nd-order loop with zeta 0.707 (not a published formula; for order 3
+    and other dampings it is an estimate).
+    """
+    rho = loop_snr(design.power, esn0, design.actual_bt)
+    if design.loop_order >= 2:
+        rho *= db_to_linear(-SECOND_ORDER_SLIP_SHIFT_DB)
+    return slip_time_bt_first_order(rho) / (design.actual_bt * design.sample_rate)
+
+
+def tikhonov_phase_variance(rho):
+    """Variance (rad^2) of phi mod 2 pi under the Tikhonov density ``exp(rho cos phi) / (2 pi I0(rho))``:
+    ``pi^2/3 + 4 sum_k (-1)^k I_k(rho) / (k^2 I0(rho))`` (first-order loop at loop SNR rho; REFERENCES 3).
+    """
+    rho = float(rho)
+    if rho < 0.0 or not np.isfinite(rho):
+        raise ValueError(f"rho must be a finite loop SNR >= 0, got {rho!r}")
+    if rho > 1e8:
+        return 1.0 / rho          # the series' relative departure from 1/rho is ~1/(2 rho) here
+    k = np.arange(1, int(12.0 * sqrt(rho)) + 41, dtype=float)
+    ratio = special.ive(k, rho) / special.ive(0, rho)        # I_k / I0 without overflow
+    terms = 4.0 * np.where(k % 2 == 0, 1.0, -1.0) * ratio / (k * k)
+    return fsum([pi * pi / 3.0, *terms.tolist()])
+
+
+def nonlinear_phase_error_variance(power, esn0, bt):
+    """Carrier phase-error variance (rad^2, phi mod 2 pi / M) from the Tikhonov density at
+    the psi-domain loop SNR ``1/(B_L T V_M)``; first-order loop model."""
+    return tikhonov_phase_variance(loop_snr(power, esn0, bt)) / (power * power)
+
+
+# --- transient responses of the discrete loop ---------------------------------------------------
+
+#: Settling band of the step responses, fraction of the final value (common practice: 2 %).
+SETTLING_BAND = 0.02
+#: Simulated length of the step responses, in time constants of the slowest closed-loop pole.
+RESPONSE_TIME_CONSTANTS = 20.0
+#: Longest simulated step response, samples.
+MAX_RESPONSE_SAMPLES = 1 << 22
+
+
+def response_length(design):
+    """Samples needed to watch the step responses settle (see :data:`RESPONSE_TIME_CONSTANTS`)."""
+    r = float(np.max(np.abs(closed_loop_poles(design.g_gains))))
+    tau = -1.0 / np.log(max(r, 1e-300))
+    return int(min(max(np.ceil(RESPONSE_TIME_CONSTANTS * tau), 256), MAX_RESPONSE_SAMPLES))
+
+
+@dataclass(frozen=True)
+class StepMetrics:
+    """Step-response figures, seconds and percent; ``nan`` when not reached within the simulated window."""
+    rise_time_s: float       #: 10 % -> 90 % of the final value
+    overshoot_pct: float     #: largest excursion beyond the final value, % of the final value
+    settling_time_s: float   #: from then on within SETTLING_BAND of the final value
+
+
+def _first_crossing(y, level):
+    """Fractional sample index where ``y`` first reaches ``level`` (linear interpolation), or nan."""
+    above = np.nonzero(y >= level)[0]
+    if above.size == 0:
+        return np.nan
+    i = int(above[0])
+    if i == 0:
+        return 0.0
+    return i - 1 + (level - y[i - 1]) / (y[i] - y[i - 1])
+
+
+def _settling_index(y, final, band):
+    """First sample index from which ``|y - final| <= band`` holds to the end, or nan."""
+    outside = np.nonzero(np.abs(y - final) > band)[0]
+    if outside.size == 0:
+        return 0.0
+    if outside[-1] == len(y) - 1:
+        return np.nan
+    return float(outside[-1] + 1)
+
+
+def step_metrics(y, final, sample_rate):
+    """Rise time, overshoot and settling time of a step response ``y`` that tends to ``final``."""
+    rise = _first_crossing(y, 0.9 * final) - _first_crossing(y, 0.1 * final)
+    overshoot = max(0.0, 100.0 * (float(np.max(y)) - final) / final)
+    settle = _settling_index(y, final, SETTLING_BAND * abs(final))
+    return StepMetrics(rise / sample_rate, overshoot, settle / sample_rate)
+
+
+@dataclass(frozen=True, eq=False)
+class StepResponses:
+    """Phase-step and frequency-step responses of the linearised discrete loop.
+
+    Arrays share ``time_s``; the loop is linear, so a step of any size scales them.
+    """
+    time_s: np.ndarray
+    phase_step: np.ndarray          #: theta^ per unit phase step
+    freq_step_nco: np.ndarray       #: NCO frequency per unit frequency step
+    freq_step_error: np.ndarray     #: phase error phi (rad) per Hz of frequency step
+    phase_metrics: StepMetrics      #: of ``phase_step``
+    freq_metrics: StepMetrics       #: of ``freq_step_nco``
+    peak_error_rad_per_hz: float    #: largest |phi| after a 1 Hz frequency step
+    peak_error_time_s: float
+    error_final_rad_per_hz: float   #: steady phase error per Hz of step (0 unless order 1)
+    error_settling_time_s: float    #: |phi - final| within SETTLING_BAND of the peak from then on
+
+
+def step_responses(design, n_samples=None):
+    """Simulate the linear phase-domain loop (``scipy.signal.lfilter`` on :func:`closed_loop`)
+    for a unit phase step and a 1 Hz frequency step applied at sample 0."""
+    n = response_length(design) if n_samples is None else int(n_samples)
+    fs = design.sample_rate
+    b, a = closed_loop(design.g_gains)
+    step = np.ones(n)
+    phase = signal.lfilter(b, a, step)
+    # the input frequency theta[k] - theta[k-1] of the ramp theta[k] = 2 pi k / fs is a step delayed by one sample
+    delayed = np.concatenate(([0.0], step[:-1]))
+    nco = signal.lfilter(b, a, delayed)
+    ramp = 2.0 * pi * np.arange(n) / fs
+    error = signal.lfilter(np.asarray(a) - np.asarray(b), a, ramp)      # (1 - H) applied directly
+    final_error = design.frequency_step_error(1.0)
+    i_peak = int(np.argmax(np.abs(error)))
+    peak = float(abs(error[i_peak]))
+    return StepResponses(
+        time_s=np.arange(n) / fs, phase_step=phase, freq_step_nco=nco, freq_step_error=error,
+        phase_metrics=step_metrics(phase, 1.0, fs), freq_metrics=step_metrics(nco, 1.0, fs),
+        peak_error_rad_per_hz=peak, peak_error_time_s=i_peak / fs, error_final_rad_per_hz=final_error,
+        error_settling_time_s=_settling_index(error, final_error, SETTLING_BAND * peak) / fs)
+
+
+def closed_loop_magnitude_db(design, freqs_hz):
+    """Closed-loop gain ``20 log10 |H(e^{j 2 pi f / fs})|`` (dB) at the frequencies ``freqs_hz`` (Hz)."""
+    b, a = closed_loop(design.g_gains)
+    _, h = signal.freqz(b, a, worN=np.asarray(freqs_hz, dtype=float), fs=design.sample_rate)
+    return 20.0 * np.log10(np.maximum(np.abs(h), 1e-300))
+
+
+def closed_loop_peaking_db(design):
+    """Largest closed-loop gain (dB) over 0..fs/2 (jitter peaking; 0 dB for a first-order loop)."""
+    freqs = np.linspace(0.0, design.sample_rate / 2.0, 1 << 16)
+    freqs = np.union1d(freqs, np.geomspace(design.bt * design.sample_rate * 1e-3, design.sample_rate / 2, 4096))
+    return max(0.0, float(np.max(closed_loop_magnitude_db(design, freqs))))
+
+
+def closed_loop_3db_hz(design):
+    """Frequency (Hz) where the closed-loop gain falls through -3 dB, or nan if it stays above up to fs/2."""
+    freqs = np.geomspace(design.bt * design.sample_rate * 1e-3, design.sample_rate / 2.0, 8192)
+    mag = closed_loop_magnitude_db(design, freqs) + 10.0 * np.log10(2.0)
+    below = np.nonzero(mag < 0.0)[0]
+    if below.size == 0 or below[0] == 0:
+        return np.nan
+    i = int(below[0])
+    return optimize.brentq(lambda f: closed_loop_magnitude_db(design, [f])[0] + 10.0 * np.log10(2.0),
+                           freqs[i - 1], freqs[i], xtol=1e-12 * freqs[i])
+
+
+# --- tracking and bandwidth choice -----------------------------------------------------------
+
+def jerk_phase_error(design, rate2_hz_per_s2):
+    """Steady-state phase error (rad) to a frequency acceleration in Hz/s^2: exact discrete
+    ``J / (g K3)`` with ``J = 2 pi rate2 / fs^3`` rad/sample^3 for order 3 (REFERENCES 2.1); unbounded otherwise."""
+    if rate2_hz_per_s2 == 0.0:
+        return 0.0
+    if design.loop_order != 3:
+        return inf
+    return 2.0 * pi * rate2_hz_per_s2 / design.sample_rate ** 3 / design.g_gains[2]
+
+
+def total_phase_error_variance(design, esn0, rate_hz_per_s):
+    """Linear jitter variance plus squared steady ramp error (rad^2) at linear Es/N0 ``esn0``."""
+    jitter = phase_error_variance(design.power, esn0, design.actual_bt)
+    return jitter + design.ramp_phase_error(rate_hz_per_s) ** 2
+
+
+def suggest_noise_bw(sample_rate, power, esn0, rate_hz_per_s, damping=0.707, loop_order=2):
+    """Noise bandwidth B_L (Hz) of a 2nd-order loop that minimises jitter variance plus
+    squared steady ramp error for linear Es/N0 ``esn0`` and a frequency ramp in Hz/s.
+
+    Only a 2nd-order loop has this trade-off (order 1 cannot track a ramp; order 3 has no
+    ramp error). The search runs over exact designs up to ``MAX_BT * sample_rate``.
+    """
+    if loop_order != 2:
+        raise ValueError(f"loop_order must be 2 for a bandwidth suggestion, got {loop_order!r}")
+    if not np.isfinite(esn0) or esn0 <= 0.0:
+        raise ValueError(f"esn0 must be a positive linear Es/N0, got {esn0!r}")
+    if not np.isfinite(rate_hz_per_s) or rate_hz_per_s == 0.0:
+        raise ValueError(f"rate_hz_per_s must be a non-zero frequency ramp in Hz/s, got {rate_hz_per_s!r}")
+    validate_spec(sample_rate, power, MAX_BT * sample_rate, damping, loop_order)
+    # continuous estimate: a B + k / B^4 with a = V_M T / M^2, k = (2 pi rate c^2)^2, c = B_L / wn
+    a = mth_power_noise(power, esn0) / (sample_rate * power * power)
+    k = (2.0 * pi * rate_hz_per_s * noise_bw_per_wn(damping) ** 2) ** 2
+    hi = MAX_BT * sample_rate
+    guess = min((4.0 * k / a) ** 0.2, hi)
+    lo_log, hi_log = np.log(guess / 30.0), np.log(min(guess * 30.0, hi))
+
+    def cost(log_bw):
+        d = design_loop(sample_rate, power, float(np.exp(log_bw)), damping, loop_order)
+        return total_phase_error_variance(d, esn0, rate_hz_per_s)
+
+    best = optimize.minimize_scalar(cost, bounds=(lo_log, hi_log), method="bounded",
+                                    options={"xatol": 1e-7})
+    return float(np.exp(best.x))
+
+
 __all__ = [
     "MAX_BT", "MAX_DAMPING", "MAX_POWER", "KAPLAN_A2", "KAPLAN_A3", "KAPLAN_B3",
     "noise_bw_per_wn", "natural_frequency", "third_order_bw_per_w0", "third_order_coefficients",
@@ -342,4 +722,13 @@ __all__ = [
     "LoopDesign", "validate_spec", "design_loop",
     "mth_power_noise", "squaring_loss", "phase_error_variance", "db_to_linear",
     "continuous_ramp_phase_error", "max_trackable_ramp_hz_per_s",
+    "RICE_PHASE_SETTLING", "ACQ_WITHIN_LOCK_IN", "ACQ_PULLS_IN", "ACQ_TOO_SLOW", "ACQ_BEYOND_HOLD",
+    "ACQ_BEYOND_RANGE", "unambiguous_range_hz", "lock_in_range_rad_s", "pull_out_rad_s",
+    "pull_in_time_gardner_s", "pull_in_time_rice_s", "phase_settling_time_rice_s", "acquisition_wn",
+    "lock_in_range_hz", "pull_out_hz", "pull_in_time_s", "Acquisition", "assess_acquisition",
+    "SECOND_ORDER_SLIP_SHIFT_DB", "loop_snr", "slip_time_bt_first_order", "mean_time_between_slips_s",
+    "tikhonov_phase_variance", "nonlinear_phase_error_variance",
+    "SETTLING_BAND", "RESPONSE_TIME_CONSTANTS", "MAX_RESPONSE_SAMPLES", "response_length", "StepMetrics",
+    "step_metrics", "StepResponses", "step_responses", "closed_loop_magnitude_db", "closed_loop_peaking_db",
+    "closed_loop_3db_hz", "jerk_phase_error", "total_phase_error_variance", "suggest_noise_bw",
 ]

@@ -40,3 +40,66 @@ CARRIER_FREQ_PMT = pmt.intern(CARRIER_FREQ)
 RX_TIME_PMT = pmt.intern(RX_TIME)
 COMMAND_PORT_PMT = pmt.intern(COMMAND_PORT)
 STATUS_PORT_PMT = pmt.intern(STATUS_PORT)
+ST_LOCKED_PMT = pmt.intern(ST_LOCKED)
+ST_METRIC_PMT = pmt.intern(ST_METRIC)
+ST_ESN0_DB_PMT = pmt.intern(ST_ESN0_DB)
+ST_SAMPLE_PMT = pmt.intern(ST_SAMPLE)
+ST_TIME_S_PMT = pmt.intern(ST_TIME_S)
+ST_FREQ_HZ_PMT = pmt.intern(ST_FREQ_HZ)
+
+
+# Status dict -------------------------------------------------------------------
+
+def status_dict(locked, metric, esn0_db, sample, time_s, freq_hz=None):
+    """The status dict (pmt) published as ``carrier_status`` tag and ``status`` message.
+
+    locked: bool; metric: lock statistic; esn0_db: Es/N0 estimate, dB;
+    sample: absolute stream offset (uint64); time_s: seconds (absolute with
+    rx_time, else offset / sample_rate); freq_hz: latest upstream carrier_freq
+    tag value, Hz, or None to leave the key out.
+    """
+    d = pmt.make_dict()
+    d = pmt.dict_add(d, ST_LOCKED_PMT, pmt.from_bool(bool(locked)))
+    d = pmt.dict_add(d, ST_METRIC_PMT, pmt.from_double(float(metric)))
+    d = pmt.dict_add(d, ST_ESN0_DB_PMT, pmt.from_double(float(esn0_db)))
+    d = pmt.dict_add(d, ST_SAMPLE_PMT, pmt.from_uint64(int(sample)))
+    d = pmt.dict_add(d, ST_TIME_S_PMT, pmt.from_double(float(time_s)))
+    if freq_hz is not None:
+        d = pmt.dict_add(d, ST_FREQ_HZ_PMT, pmt.from_double(float(freq_hz)))
+    return d
+
+
+def status_from_pmt(d):
+    """A status dict (pmt) as a plain Python dict with the same keys."""
+    return pmt.to_python(d)
+
+
+# rx_time (hardware time tag) ------------------------------------------------------
+
+def rx_time_pmt(seconds, fraction):
+    """An ``rx_time`` tag value: pmt tuple (uint64 whole seconds, double fraction of a second)."""
+    return pmt.make_tuple(pmt.from_uint64(int(seconds)), pmt.from_double(float(fraction)))
+
+
+def decode_rx_time(value):
+    """``(whole_seconds, fraction)`` from an ``rx_time`` tag value, or None if it is not
+    a 2-tuple of (integer seconds, real fraction)."""
+    try:
+        if not pmt.is_tuple(value) or pmt.length(value) != 2:
+            return None
+        secs = pmt.to_python(pmt.tuple_ref(value, 0))
+        frac = pmt.to_python(pmt.tuple_ref(value, 1))
+        if isinstance(secs, bool) or not isinstance(secs, (int, float)) or not isinstance(frac, (int, float)):
+            return None
+        return int(secs), float(frac)
+    except (RuntimeError, ValueError, TypeError):
+        return None
+
+
+def elapsed_time_s(origin, sample, sample_rate):
+    """Time (s) of absolute offset ``sample``: ``origin = (tag_offset, seconds, fraction)``
+    from the latest ``rx_time`` at or before it, or None for ``sample / sample_rate``."""
+    if origin is None:
+        return sample / sample_rate
+    offset, secs, frac = origin
+    return secs + (frac + (sample - offset) / sample_rate)

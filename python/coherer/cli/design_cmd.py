@@ -1,0 +1,372 @@
+# SPDX-License-Identifier: GPL-3.0-or-later
+"""``coherer design``: loop gains and performance predictions for a loop specification.
+
+Every number comes from :mod:`coherer.design`, the module the blocks use; this
+module only parses arguments, collects the figures, prints or plots them and
+raises :class:`~coherer.cli.UserError` for bad arguments.
+"""
+
+import json
+import math
+
+from .. import design
+from . import UserError
+
+#: Slips expected more often than once per this many seconds get a warning.
+SLIP_WARNING_S = 60.0
+#: B_L T above which the continuous-time theory behind the acquisition and slip predictions
+#: departs from the discrete loop (the textbook gains are 4.5 % off at 0.05, REFERENCES 1.2).
+LARGE_BT = 0.05
+#: Default pull-in time budget, seconds.
+DEFAULT_PULL_IN_BUDGET_S = 1.0
+
+# command-line option for each validate_spec argument, to name the option in error messages
+_OPTION_OF = {"sample_rate": "--sample-rate", "power": "--power", "noise_bw_hz": "--noise-bw",
+              "damping": "--damping", "loop_order": "--loop-order"}
+
+
+def register(subparsers):
+    """Add the ``design`` sub-command."""
+    p = subparsers.add_parser(
+        "design", help="loop gains and predictions (jitter, slips, pull-in, ramp error)",
+        description="Design an M-th power carrier loop and predict its behaviour. All frequencies "
+                    "in Hz; the loop updates once per sample, so at one sample per symbol the "
+                    "sample rate is the symbol rate and --esn0 is Es/N0.")
+    p.add_argument("--sample-rate", type=float, required=True, metavar="HZ",
+                   help="loop update rate, samples/s")
+    p.add_argument("--power", type=int, required=True, metavar="M",
+                   help=f"symmetry order M: 1 pilot/PLL, 2 BPSK, 4 QPSK, 8 8PSK (1..{design.MAX_POWER})")
+    p.add_argument("--noise-bw", type=float, metavar="HZ",
+                   help=f"one-sided loop noise bandwidth B_L, Hz (at most {design.MAX_BT} x sample rate); "
+                        "required unless --suggest")
+    p.add_argument("--damping", type=float, default=0.707, metavar="Z",
+                   help=f"damping factor zeta, orders 2 and 3 (0 < Z <= {design.MAX_DAMPING}; default 0.707)")
+    p.add_argument("--loop-order", type=int, default=2, metavar="N", help="loop order 1, 2 or 3 (default 2)")
+    p.add_argument("--esn0", type=float, metavar="DB",
+                   help="SNR per loop update, dB (Es/N0 at one sample per symbol): enables jitter and slip "
+                        "predictions")
+    p.add_argument("--offset", type=float, metavar="HZ",
+                   help="carrier frequency offset to acquire, Hz: enables pull-in predictions")
+    p.add_argument("--pull-in-budget", type=float, default=DEFAULT_PULL_IN_BUDGET_S, metavar="S",
+                   help="pull-in time the loop may take on its own before an acquisition aid is "
+                        f"called for, s (default {DEFAULT_PULL_IN_BUDGET_S:g})")
+    p.add_argument("--doppler-rate", type=float, metavar="HZ_PER_S",
+                   help="carrier frequency ramp, Hz/s: enables the steady-state ramp error")
+    p.add_argument("--plot", metavar="FILE.png",
+                   help="write phase-step, frequency-step and closed-loop magnitude plots to this PNG file")
+    p.add_argument("--json", action="store_true", help="print machine-readable JSON instead of text")
+    p.add_argument("--suggest", action="store_true",
+                   help="choose B_L minimising jitter variance plus squared ramp error "
+                        "(needs --esn0 and --doppler-rate, loop order 2)")
+    p.set_defaults(func=run)
+
+
+def _check_finite(name, value, positive=False):
+    if value is not None and (not math.isfinite(value) or (positive and value <= 0.0)):
+        rule = "a positive number" if positive else "a finite number"
+        raise UserError(f"{name} must be {rule}, got {value!r}")
+
+
+def _design_or_user_error(args, noise_bw):
+    try:
+        return design.design_loop(args.sample_rate, args.power, noise_bw, args.damping, args.loop_order)
+    except ValueError as exc:
+        message = str(exc)
+        first = message.split(" ", 1)[0]
+        raise UserError(_OPTION_OF.get(first, first) + message[len(first):]) from None
+
+
+def _validate(args):
+    _check_finite("--esn0", args.esn0)
+    _check_finite("--offset", args.offset)
+    _check_finite("--doppler-rate", args.doppler_rate)
+    _check_finite("--pull-in-budget", args.pull_in_budget, positive=True)
+    if args.suggest:
+        if args.esn0 is None or not args.doppler_rate:
+            raise UserError("--suggest needs --esn0 and a non-zero --doppler-rate")
+        if args.loop_order != 2:
+            raise UserError(f"--suggest needs --loop-order 2 (order 1 cannot track a ramp, order 3 has no "
+                            f"ramp error), got {args.loop_order}")
+    elif args.noise_bw is None:
+        raise UserError("--noise-bw is required (or use --suggest)")
+    # the specification itself, with the bandwidth checked only when it is given
+    probe_bw = args.noise_bw if args.noise_bw is not None else design.MAX_BT * abs(args.sample_rate or 1.0)
+    _design_or_user_error(args, probe_bw)
+
+
+def predictions(args):
+    """All figures for the parsed arguments, as a dict of plain numbers (SI units, rad)."""
+    _validate(args)
+    esn0 = design.db_to_linear(args.esn0) if args.esn0 is not None else None
+    result = {}
+    noise_bw = args.noise_bw
+    if args.suggest:
+        noise_bw = design.suggest_noise_bw(args.sample_rate, args.power, esn0, args.doppler_rate,
+                                           args.damping, args.loop_order)
+        result["suggested_noise_bw_hz"] = noise_bw
+        if args.noise_bw is not None:
+            given = _design_or_user_error(args, args.noise_bw)
+            result["requested_noise_bw_hz"] = args.noise_bw
+            result["requested_total_phase_error_rms_rad"] = math.sqrt(
+                design.total_phase_error_variance(given, esn0, args.doppler_rate))
+    d = _design_or_user_error(args, noise_bw)
+    steps = design.step_responses(d)
+    result.update({
+        "sample_rate_hz": d.sample_rate, "power": d.power, "loop_order": d.loop_order, "damping": d.damping,
+        "noise_bw_hz": d.noise_bw_hz, "bt": d.bt,
+        "actual_noise_bw_hz": d.actual_bt * d.sample_rate, "actual_bt": d.actual_bt,
+        "design_bt": d.design_bt,
+        "k1": d.k1, "k2": d.k2, "k3": d.k3, "g_k1": d.g_gains[0], "g_k2": d.g_gains[1], "g_k3": d.g_gains[2],
+        "natural_frequency_rad_s": d.natural_frequency,
+        "natural_frequency_hz": d.natural_frequency / (2.0 * math.pi),
+        "lock_in_range_hz": design.lock_in_range_hz(d), "pull_out_hz": design.pull_out_hz(d),
+        "unambiguous_range_hz": design.unambiguous_range_hz(d.sample_rate, d.power),
+        "closed_loop_peaking_db": design.closed_loop_peaking_db(d),
+        "closed_loop_3db_hz": design.closed_loop_3db_hz(d),
+        "phase_step_rise_time_s": steps.phase_metrics.rise_time_s,
+        "phase_step_overshoot_pct": steps.phase_metrics.overshoot_pct,
+        "phase_step_settling_time_s": steps.phase_metrics.settling_time_s,
+        "freq_step_nco_rise_time_s": steps.freq_metrics.rise_time_s,
+        "freq_step_nco_overshoot_pct": steps.freq_metrics.overshoot_pct,
+        "freq_step_nco_settling_time_s": steps.freq_metrics.settling_time_s,
+        "freq_step_peak_error_rad_per_hz": steps.peak_error_rad_per_hz,
+        "freq_step_peak_error_time_s": steps.peak_error_time_s,
+        "freq_step_final_error_rad_per_hz": steps.error_final_rad_per_hz,
+        "freq_step_error_settling_time_s": steps.error_settling_time_s,
+        "max_doppler_rate_hz_per_s": design.max_trackable_ramp_hz_per_s(d),
+    })
+    if esn0 is not None:
+        variance = design.phase_error_variance(d.power, esn0, d.actual_bt)
+        result.update({
+            "esn0_db": args.esn0,
+            "squaring_loss_db": 10.0 * math.log10(design.squaring_loss(d.power, esn0)),
+            "loop_snr_db": 10.0 * math.log10(design.loop_snr(d.power, esn0, d.actual_bt)),
+            "phase_error_rms_rad": math.sqrt(variance),
+            "phase_error_rms_tikhonov_rad": math.sqrt(
+                design.nonlinear_phase_error_variance(d.power, esn0, d.actual_bt)),
+            "mean_time_between_slips_s": design.mean_time_between_slips_s(d, esn0),
+        })
+    if args.offset is not None:
+        acq = design.assess_acquisition(d, args.offset, args.pull_in_budget)
+        result.update({
+            "offset_hz": args.offset, "pull_in_time_s": acq.pull_in_s, "pull_in_time_rice_s": acq.pull_in_rice_s,
+            "lock_time_s": acq.lock_time_s, "pull_in_budget_s": acq.budget_s,
+            "acquisition_needed": acq.needed, "acquisition_reason": acq.reason,
+            "offset_phase_error_rad": d.frequency_step_error(args.offset),
+        })
+    if args.doppler_rate is not None:
+        result["doppler_rate_hz_per_s"] = args.doppler_rate
+        result["ramp_phase_error_rad"] = d.ramp_phase_error(args.doppler_rate)
+        if esn0 is not None:
+            result["total_phase_error_rms_rad"] = math.sqrt(
+                design.total_phase_error_variance(d, esn0, args.doppler_rate))
+    result["warnings"] = warnings_for(d, result)
+    return d, steps, result
+
+
+def warnings_for(d, r):
+    """One sentence per unsafe choice found in the figures ``r`` of design ``d``."""
+    out = []
+    if d.actual_bt > LARGE_BT:
+        out.append(f"B_L T = {d.actual_bt:.3g} is above {LARGE_BT}: the gains are exact for the discrete loop, "
+                   "but the lock-in, pull-in and slip predictions come from continuous-time theory and "
+                   "grow unreliable")
+    slip = r.get("mean_time_between_slips_s")
+    if slip is not None and slip < SLIP_WARNING_S:
+        out.append(f"cycle slips expected about every {_fmt_time(slip)}, more often than once a minute: "
+                   "narrow the loop or raise the SNR")
+    rate = r.get("doppler_rate_hz_per_s")
+    if rate:
+        limit = r["max_doppler_rate_hz_per_s"]
+        if abs(rate) > limit:
+            out.append(f"Doppler rate {abs(rate):g} Hz/s is beyond what this loop tracks ({limit:.4g} Hz/s keeps "
+                       "M x ramp error below pi/2): widen the loop or use loop order 3")
+    offset = r.get("offset_hz")
+    if offset is not None:
+        if abs(offset) > r["unambiguous_range_hz"]:
+            out.append(f"offset {abs(offset):g} Hz is beyond the unambiguous range fs/(2M) = "
+                       f"{r['unambiguous_range_hz']:.6g} Hz: the loop would lock to an alias")
+        elif r["acquisition_needed"]:
+            out.append(f"offset {abs(offset):g} Hz: {r['acquisition_reason']}; enable frequency acquisition")
+    return out
+
+
+# --- text output ------------------------------------------------------------------------
+
+def _fmt_time(seconds):
+    if seconds is None or math.isnan(seconds):
+        return "n/a (not within the simulated window)"
+    if math.isinf(seconds):
+        return "never"
+    if seconds >= 1e6 * 86400.0 * 365.0:
+        return "more than a million years"
+    if seconds >= 86400.0 * 365.0:
+        return f"{seconds / (86400.0 * 365.0):.3g} years"
+    if seconds >= 3600.0:
+        return f"{seconds / 3600.0:.3g} h"
+    if seconds >= 1.0:
+        return f"{seconds:.4g} s"
+    if seconds >= 1e-3:
+        return f"{seconds * 1e3:.4g} ms"
+    return f"{seconds * 1e6:.4g} us"
+
+
+def _rad(x):
+    if math.isinf(x):
+        return "unbounded"
+    return f"{x:.4g} rad ({math.degrees(x):.3g} deg)"
+
+
+def format_text(r):
+    """The human-readable report."""
+    order = r["loop_order"]
+    lines = [f"loop: order {order}, M = {r['power']}, sample rate {r['sample_rate_hz']:g} samples/s"
+             + (f", damping {r['damping']:g}" if order > 1 else "")]
+    row = lines.append
+    if "suggested_noise_bw_hz" in r:
+        row(f"  suggested noise bandwidth B_L        {r['suggested_noise_bw_hz']:.6g} Hz "
+            "(minimises jitter variance + squared ramp error)")
+        if "requested_noise_bw_hz" in r:
+            row(f"  (at --noise-bw {r['requested_noise_bw_hz']:g} Hz total phase error would be "
+                f"{_rad(r['requested_total_phase_error_rms_rad'])} rms)")
+    row(f"  requested noise bandwidth B_L        {r['noise_bw_hz']:.6g} Hz (B_L T = {r['bt']:.4g})")
+    row(f"  actual noise bandwidth (discrete)    {r['actual_noise_bw_hz']:.6g} Hz (B_L T = {r['actual_bt']:.4g})")
+    gains = f"K1 = {r['k1']:.6g}" + (f", K2 = {r['k2']:.6g}" if order > 1 else "") \
+        + (f", K3 = {r['k3']:.6g}" if order > 2 else "")
+    row(f"  gains per unit detector gain         {gains}  (loop gain g = M)")
+    wn_name = {1: "loop gain K", 2: "natural frequency wn", 3: "natural frequency w0"}[order]
+    row(f"  {wn_name:<37}{r['natural_frequency_rad_s']:.6g} rad/s ({r['natural_frequency_hz']:.4g} Hz)")
+    lock_in_note = "" if order == 1 else " (engineering estimate 2 zeta wn / M)"
+    row(f"  lock-in range                        +/-{r['lock_in_range_hz']:.4g} Hz{lock_in_note}")
+    row(f"  pull-out frequency step              {r['pull_out_hz']:.4g} Hz")
+    row(f"  unambiguous range fs/(2M)            +/-{r['unambiguous_range_hz']:.6g} Hz")
+    row(f"  phase step: rise (10-90 %)           {_fmt_time(r['phase_step_rise_time_s'])}, overshoot "
+        f"{r['phase_step_overshoot_pct']:.3g} %, settling (2 %) {_fmt_time(r['phase_step_settling_time_s'])}")
+    row(f"  frequency step: NCO rise (10-90 %)   {_fmt_time(r['freq_step_nco_rise_time_s'])}, overshoot "
+        f"{r['freq_step_nco_overshoot_pct']:.3g} %, settling (2 %) {_fmt_time(r['freq_step_nco_settling_time_s'])}")
+    row(f"  frequency step: peak phase error     {r['freq_step_peak_error_rad_per_hz']:.4g} rad per Hz of step "
+        f"at {_fmt_time(r['freq_step_peak_error_time_s'])}, settles in "
+        f"{_fmt_time(r['freq_step_error_settling_time_s'])}")
+    row(f"  closed-loop peaking                  {r['closed_loop_peaking_db']:.3g} dB, -3 dB at "
+        f"{r['closed_loop_3db_hz']:.4g} Hz")
+    if "esn0_db" in r:
+        row(f"at {r['esn0_db']:g} dB SNR per update:")
+        row(f"  squaring loss                        {r['squaring_loss_db']:.3f} dB")
+        row(f"  loop SNR (M phi domain)              {r['loop_snr_db']:.3f} dB")
+        row(f"  phase-error RMS (linear theory)      {_rad(r['phase_error_rms_rad'])}")
+        row(f"  phase-error RMS (Tikhonov model)     {_rad(r['phase_error_rms_tikhonov_rad'])}")
+        note = " (Viterbi, first order)" if order == 1 else " (Viterbi, -1 dB empirical correction)"
+        row(f"  mean time between cycle slips        {_fmt_time(r['mean_time_between_slips_s'])}{note}")
+    if "offset_hz" in r:
+        row(f"for a carrier offset of {r['offset_hz']:g} Hz:")
+        row(f"  pull-in time (Gardner)               {_fmt_time(r['pull_in_time_s'])}"
+            f"  [Rice's rule: {_fmt_time(r['pull_in_time_rice_s'])}]")
+        row(f"  time to lock (+ 1.3/B_L settling)    {_fmt_time(r['lock_time_s'])}")
+        verdict = "needed" if r["acquisition_needed"] else "not needed"
+        row(f"  frequency acquisition aid            {verdict}: {r['acquisition_reason']}")
+        if order == 1 and not math.isinf(r["pull_in_time_s"]):
+            row(f"  steady phase error from the offset   {_rad(r['offset_phase_error_rad'])}")
+    if "doppler_rate_hz_per_s" in r:
+        row(f"for a Doppler rate of {r['doppler_rate_hz_per_s']:g} Hz/s:")
+        row(f"  steady-state phase error             {_rad(abs(r['ramp_phase_error_rad']))}")
+        row(f"  largest trackable rate               {r['max_doppler_rate_hz_per_s']:.4g} Hz/s")
+        if "total_phase_error_rms_rad" in r:
+            row(f"  total phase error (jitter + ramp)    {_rad(r['total_phase_error_rms_rad'])} rms")
+    for w in r["warnings"]:
+        row(f"warning: {w}")
+    return "\n".join(lines)
+
+
+def _json_safe(value):
+    """JSON has no inf/nan: they become null (inf means never/unbounded, nan not determined)."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, list):
+        return [_json_safe(v) for v in value]
+    return value
+
+
+# --- plot -------------------------------------------------------------------------------
+
+def write_plot(path, d, steps, r):
+    """Phase-step, frequency-step and closed-loop magnitude plots of design ``d`` to a PNG file."""
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    import numpy as np
+
+    t_end = np.nanmax([r["phase_step_settling_time_s"], r["freq_step_error_settling_time_s"],
+                       10.0 / (r["actual_noise_bw_hz"])])
+    n = min(len(steps.time_s), int(np.ceil(1.5 * t_end * d.sample_rate)) + 2)
+    stride = max(1, n // 4000)
+    t = steps.time_s[:n:stride]
+    scale, unit = (1e3, "ms") if t[-1] < 2.0 else (1.0, "s")
+    t = t * scale
+    title = (f"order {d.loop_order}, M = {d.power}, B_L = {r['actual_noise_bw_hz']:.4g} Hz, "
+             f"fs = {d.sample_rate:g} samples/s" + (f", damping {d.damping:g}" if d.loop_order > 1 else ""))
+    fig, axes = plt.subplots(2, 2, figsize=(12, 8))
+    fig.suptitle(f"coherer design: {title}")
+
+    ax = axes[0, 0]
+    ax.plot(t, steps.phase_step[:n:stride], label="phase estimate / step")
+    ax.axhline(1.0, color="k", lw=0.8, ls=":", label="step")
+    ax.axhspan(1 - design.SETTLING_BAND, 1 + design.SETTLING_BAND, color="g", alpha=0.15, label="2 % band")
+    ax.set(title=f"Phase step: overshoot {r['phase_step_overshoot_pct']:.3g} %, "
+                 f"settling {_fmt_time(r['phase_step_settling_time_s'])}",
+           xlabel=f"time ({unit})", ylabel="phase estimate / phase step")
+    ax.legend(loc="lower right")
+
+    ax = axes[0, 1]
+    ax.plot(t, steps.freq_step_nco[:n:stride], label="NCO frequency / step")
+    ax.axhline(1.0, color="k", lw=0.8, ls=":", label="step")
+    ax.set(title=f"Frequency step: NCO settling {_fmt_time(r['freq_step_nco_settling_time_s'])}",
+           xlabel=f"time ({unit})", ylabel="NCO frequency / frequency step")
+    ax.legend(loc="lower right")
+
+    ax = axes[1, 0]
+    offset = r.get("offset_hz")
+    if offset:
+        err = np.degrees(steps.freq_step_error[:n:stride] * offset)
+        label, ylabel = f"phase error, {offset:g} Hz step", "phase error (deg)"
+    else:
+        err = np.degrees(steps.freq_step_error[:n:stride])
+        label, ylabel = "phase error per Hz of step", "phase error (deg per Hz)"
+    if d.power * r["freq_step_peak_error_rad_per_hz"] * abs(offset or 1.0) > math.pi / 2:
+        label += " (M x peak > 90 deg: the real loop slips)"
+    ax.plot(t, err, color="C3", label=label)
+    ax.axhline(0.0, color="k", lw=0.8)
+    ax.set(title=f"Frequency step: phase error (linear loop), peak "
+                 f"{math.degrees(r['freq_step_peak_error_rad_per_hz'] * (offset or 1.0)):.3g} deg",
+           xlabel=f"time ({unit})", ylabel=ylabel)
+    ax.legend(loc="upper right")
+
+    ax = axes[1, 1]
+    freqs = np.geomspace(r["actual_noise_bw_hz"] / 100.0, d.sample_rate / 2.0, 1000)
+    ax.semilogx(freqs, design.closed_loop_magnitude_db(d, freqs), label="|H(f)| closed loop")
+    ax.axvline(r["actual_noise_bw_hz"], color="C2", ls="--", label=f"B_L = {r['actual_noise_bw_hz']:.4g} Hz")
+    ax.axhline(-3.0, color="k", lw=0.8, ls=":", label="-3 dB")
+    ax.set(title=f"Closed-loop magnitude: peaking {r['closed_loop_peaking_db']:.2g} dB",
+           xlabel="frequency (Hz)", ylabel="gain (dB)", ylim=(-40, max(6.0, r["closed_loop_peaking_db"] + 2)))
+    ax.legend(loc="lower left")
+
+    for ax in axes.flat:
+        ax.grid(True, which="both", alpha=0.3)
+    fig.tight_layout()
+    try:
+        fig.savefig(path, format="png", dpi=100)
+    except OSError as exc:
+        raise UserError(f"--plot: cannot write {path}: {exc.strerror or exc}") from None
+    finally:
+        plt.close(fig)
+
+
+def run(args):
+    """Entry point of ``coherer design``."""
+    d, steps, result = predictions(args)
+    if args.plot:
+        write_plot(args.plot, d, steps, result)
+    if args.json:
+        print(json.dumps({k: _json_safe(v) for k, v in result.items()}, indent=2, allow_nan=False))
+    else:
+        print(format_text(result))
+    return 0

@@ -1,0 +1,246 @@
+# SPDX-License-Identifier: GPL-3.0-or-later
+"""Lock statistic, thresholds, detection prediction and M2M4 estimator
+(coherer.lockstat) against REFERENCES.md sections 7 and 8 and independent
+numerics. Kernels are checked against plain numpy reference implementations."""
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy import integrate, stats
+
+from gnuradio.coherer import lockstat as L
+
+
+def db(x):
+    return 10.0 ** (x / 10.0)
+
+
+# --- c_M (REFERENCES 7.1) -----------------------------------------------------------
+
+# REFERENCES 7.1 table; closed form [MEM there], values [NUM]; given to 5 decimals.
+C_M_TABLE = {
+    1: (0.71027, 0.92798, 0.97390, 0.99749),
+    2: (0.36788, 0.75350, 0.90000, 0.99000),
+    4: (0.05696, 0.35738, 0.65999, 0.96060),
+    8: (0.00039, 0.03075, 0.20393, 0.85153),
+}
+
+
+@pytest.mark.parametrize("power", [1, 2, 4, 8])
+def test_c_m_table(power):
+    # REFERENCES.md 7.1 table of c_M at 0/6/10/20 dB (closed form from memory, checked numerically there).
+    got = [L.c_m(power, db(d)) for d in (0.0, 6.0, 10.0, 20.0)]
+    np.testing.assert_allclose(got, C_M_TABLE[power], atol=5e-6)   # table rounding: half a unit in the 5th decimal
+
+
+def _phase_pdf(theta, rho):
+    """Phase pdf of a unit tone in complex Gaussian noise at SNR rho (from memory:
+    the classical result, e.g. Proakis & Salehi, Digital Communications, ch. 4)."""
+    c = np.cos(theta)
+    return np.exp(-rho) / (2 * np.pi) * (
+        1 + np.sqrt(4 * np.pi * rho) * c * np.exp(rho * c * c) * stats.norm.cdf(np.sqrt(2 * rho) * c))
+
+
+@pytest.mark.parametrize("rho", [0.5, 2.0, 10.0, 60.0])
+@pytest.mark.parametrize("power", [1, 2, 3, 4, 8])
+def test_c_m_equals_fourier_coefficient_of_phase_pdf(power, rho):
+    # c_M is the M-th Fourier coefficient of the phase pdf (REFERENCES 7.1 [NUM]); independent numerical
+    # integration of the pdf (formula from memory, see _phase_pdf). quad accuracy ~1e-12.
+    total = integrate.quad(_phase_pdf, -np.pi, np.pi, args=(rho,), epsabs=1e-13, limit=400)[0]
+    coef = integrate.quad(lambda t: np.cos(power * t) * _phase_pdf(t, rho), -np.pi, np.pi,
+                          epsabs=1e-13, limit=400)[0]
+    assert total == pytest.approx(1.0, abs=1e-10)
+    assert L.c_m(power, rho) == pytest.approx(coef, abs=1e-10)
+
+
+@pytest.mark.parametrize("rho", [0.1, 1.0, 3.0, 30.0])
+def test_c_2_closed_form(rho):
+    # REFERENCES 7.1: c_2(rho) = 1 - (1 - e^-rho)/rho [DER, NUM]; pure arithmetic -> rel 1e-9.
+    assert L.c_m(2, rho) == pytest.approx(1 - (1 - np.exp(-rho)) / rho, rel=1e-9)
+
+
+def test_projection_variance_noise_only():
+    # Noise only: variance of cos(M * uniform) is 1/2 for every M (REFERENCES 7.2).
+    for power in (1, 2, 4, 8):
+        assert L.projection_variance(power, 0.0) == pytest.approx(0.5, abs=1e-12)
+
+
+# --- thresholds (REFERENCES 7.2) ----------------------------------------------------
+
+@pytest.mark.parametrize("window,values", [
+    (100, (0.16450, 0.21851, 0.33612)),
+    (1000, (0.05202, 0.06910, 0.10629)),
+    (10000, (0.01645, 0.02185, 0.03361)),
+])
+def test_false_lock_threshold(window, values):
+    # REFERENCES.md 7.2: gamma = Qinv(P_FA)/sqrt(2N) [DER] at P_FA 1e-2, 1e-3, 1e-6; given to 5 decimals.
+    got = [L.false_lock_threshold(window, p) for p in (1e-2, 1e-3, 1e-6)]
+    np.testing.assert_allclose(got, values, atol=5e-6)
+    for g, p in zip(got, (1e-2, 1e-3, 1e-6)):
+        assert L.false_lock_probability(window, g) == pytest.approx(p, rel=1e-9)
+
+
+def test_default_thresholds():
+    # Documented rule: lock at P_FA 1e-6, unlock at 1e-2 per window (REFERENCES 7.2 formula);
+    # Qinv from scipy.stats.norm.isf as the external oracle.
+    for window in (32, 1024, 4096):
+        lock, unlock = L.default_thresholds(window)
+        assert lock == pytest.approx(stats.norm.isf(1e-6) / np.sqrt(2 * window), rel=1e-12)
+        assert unlock == pytest.approx(stats.norm.isf(1e-2) / np.sqrt(2 * window), rel=1e-12)
+        assert 0 < unlock < lock
+
+
+def test_threshold_validation():
+    with pytest.raises(ValueError, match="p_fa"):
+        L.false_lock_threshold(100, 0.0)
+    with pytest.raises(ValueError, match="p_fa"):
+        L.false_lock_threshold(100, 0.7)
+
+
+def test_detection_probability_reference_cases():
+    # REFERENCES.md 7.2 [DER/NUM]: N=1000, P_FA 1e-3: M=4 0 dB mean 0.05696, std 0.02229, P_D 0.293;
+    # M=4 2 dB P_D 0.984; M=8 6 dB P_D 0.043 (values given to 3 digits).
+    gamma = L.false_lock_threshold(1000, 1e-3)
+    assert L.c_m(4, 1.0) == pytest.approx(0.05696, abs=5e-6)
+    assert np.sqrt(L.projection_variance(4, 1.0) / 1000) == pytest.approx(0.02229, abs=5e-6)
+    assert L.detection_probability(4, 1.0, 1000, gamma) == pytest.approx(0.293, abs=5e-4)
+    assert L.detection_probability(4, db(2.0), 1000, gamma) == pytest.approx(0.984, abs=5e-4)
+    assert L.detection_probability(8, db(6.0), 1000, gamma) == pytest.approx(0.043, abs=5e-4)
+
+
+def test_detection_probability_with_phase_error_mean():
+    # Mean of P is cos(M phi) c_M (REFERENCES 7.1); the Gaussian prediction is centred on it,
+    # so a threshold equal to that mean is exceeded with probability exactly 1/2.
+    rho, power, window, phi = db(6.0), 2, 500, 0.2
+    mean = np.cos(power * phi) * L.c_m(power, rho)
+    assert L.detection_probability(power, rho, window, mean, phi) == pytest.approx(0.5, abs=1e-12)
+
+
+# --- M2M4 (REFERENCES 8) ---------------------------------------------------------
+
+def test_m2m4_exact_moments():
+    # REFERENCES.md 8 exactness check (Pauluzzi & Beaulieu 2000 estimator, true moments):
+    # 0 dB: M2=2, M4=7 -> 1; 10 dB: M2=1.1, M4=1.42 -> 10 (rel 1e-9);
+    # -5 dB: M2=4.16228, M4=33.64911 -> 0.316228 (inputs rounded to 6 digits, which the
+    # estimator amplifies about 10x -> rel 1e-4); with unrounded moments M2 = 1 + 1/rho,
+    # M4 = 1 + 4/rho + 2/rho^2 (REFERENCES 8 [DER]) it is exact to rel 1e-9.
+    assert L.m2m4_esn0(2.0, 7.0) == pytest.approx(1.0, rel=1e-9)
+    assert L.m2m4_esn0(1.1, 1.42) == pytest.approx(10.0, rel=1e-9)
+    assert L.m2m4_esn0(4.16228, 33.64911) == pytest.approx(0.316228, rel=1e-4)
+    for rho in (db(-5.0), db(3.0), db(20.0)):
+        n0 = 1.0 / rho
+        assert L.m2m4_esn0(1 + n0, 1 + 4 * n0 + 2 * n0 * n0) == pytest.approx(rho, rel=1e-9)
+
+
+def test_m2m4_edges():
+    # 2 M2^2 - M4 < 0 is clipped to 0 (REFERENCES 8) -> Es/N0 = 0; no noise -> inf; no power -> NaN.
+    assert L.m2m4_esn0(1.0, 3.0) == 0.0
+    assert L.m2m4_esn0(1.0, 1.0) == np.inf
+    assert np.isnan(L.m2m4_esn0(0.0, 0.0))
+    assert L.esn0_db(0.0) == L.ESN0_DB_MIN
+    assert L.esn0_db(np.inf) == L.ESN0_DB_MAX
+    assert np.isnan(L.esn0_db(np.nan))
+    np.testing.assert_allclose(L.esn0_db(np.array([1.0, 10.0])), [0.0, 10.0])
+
+
+# --- kernels ------------------------------------------------------------------------
+
+def _reference_windows(x, power, point_angle, window):
+    """Obvious numpy implementation of the per-window sums (complete windows only)."""
+    k = len(x) // window
+    z = x[:k * window].astype(np.complex128).reshape(k, window)
+    p = np.abs(z) ** 2
+    ok = np.isfinite(p) & (p > 0)
+    with np.errstate(invalid="ignore"):
+        proj = np.where(ok, np.cos(power * (np.angle(z) - point_angle)), 0.0)
+    return proj.sum(1), np.where(ok, p, 0).sum(1), np.where(ok, p * p, 0).sum(1), ok.sum(1)
+
+
+def _kernel_windows(x, power, point_angle, window, splits=()):
+    rot = np.exp(-1j * power * point_angle)
+    acc = L.new_accumulator()
+    out = [[] for _ in range(4)]
+    for chunk in np.split(x, list(splits)):
+        bufs = [np.empty(len(chunk) // window + 1) for _ in range(4)]
+        k = L.window_sums(chunk, power, rot.real, rot.imag, window, acc, *bufs)
+        for o, b in zip(out, bufs):
+            o.extend(b[:k])
+    return [np.array(o) for o in out], acc
+
+
+@pytest.mark.parametrize("power,point_angle", [(1, 0.3), (2, 0.0), (4, np.pi / 4), (8, 0.0), (5, -1.0)])
+def test_window_sums_match_reference(power, point_angle):
+    rng = np.random.default_rng(power)
+    x = (rng.standard_normal(5000) + 1j * rng.standard_normal(5000)).astype(np.complex64) * 3.0
+    x[[10, 200, 4000]] = [np.nan, np.inf, 0.0]
+    (proj, m2, m4, valid), acc = _kernel_windows(x, power, point_angle, 64)
+    ref = _reference_windows(x, power, point_angle, 64)
+    np.testing.assert_allclose(proj, ref[0], rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(m2, ref[1], rtol=1e-9)
+    np.testing.assert_allclose(m4, ref[2], rtol=1e-9)
+    np.testing.assert_array_equal(valid, ref[3])
+    assert acc[L.A_FILL] == 5000 % 64
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.integers(0, 3000), max_size=6))
+def test_window_sums_independent_of_chunking(cuts):
+    rng = np.random.default_rng(7)
+    x = (rng.standard_normal(3000) + 1j * rng.standard_normal(3000)).astype(np.complex64)
+    whole, acc_whole = _kernel_windows(x, 4, np.pi / 4, 100)
+    split, acc_split = _kernel_windows(x, 4, np.pi / 4, 100, sorted(cuts))
+    for a, b in zip(whole, split):
+        np.testing.assert_array_equal(a, b)      # same additions in the same order: bit-identical
+    np.testing.assert_array_equal(acc_whole, acc_split)
+
+
+@pytest.mark.parametrize("power", [1, 2, 4, 8])
+def test_noise_only_statistic_variance(power):
+    # REFERENCES 7.2: on noise the window mean P has mean 0 and variance exactly 1/(2N), any M.
+    # 20000 windows: the sample variance has relative standard error sqrt(2/K) = 1 %; 4 s.e. -> 4 %.
+    # The mean's standard error is sqrt(1/(2N)/K); 4 s.e. bound.
+    rng = np.random.default_rng(100 + power)
+    window, k = 64, 20000
+    x = rng.standard_normal(2 * window * k, dtype=np.float32).view(np.complex64)
+    (proj, _, _, _), _ = _kernel_windows(x, power, 0.0, window)
+    p = proj / window
+    assert len(p) == k
+    assert abs(p.mean()) < 4 * np.sqrt(1 / (2 * window) / k)
+    assert p.var() * 2 * window == pytest.approx(1.0, abs=4 * np.sqrt(2 / k))
+
+
+def test_unit_projection():
+    rot = np.exp(-1j * 4 * np.pi / 4)
+    v, ok = L.unit_projection(complex(3.0, 3.0), 4, rot)
+    assert ok and v == pytest.approx(1.0, abs=1e-12)   # a QPSK point on the diagonal
+    v, ok = L.unit_projection(complex(np.nan, 0.0), 4, rot)
+    assert not ok and v == 0.0
+    v, ok = L.unit_projection(0j, 2, 1.0 + 0j)
+    assert not ok and v == 0.0
+
+
+def _reference_hysteresis(metric, lock, unlock, state):
+    out = []
+    for m in metric:
+        state = (m >= unlock) if state else (m >= lock)
+        out.append(state)
+    return out
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.floats(-0.2, 1.0), max_size=40), st.floats(0.0, 0.5), st.floats(0.0, 0.5), st.booleans())
+def test_hysteresis_matches_reference(metric, a, b, start):
+    lock, unlock = max(a, b), min(a, b)
+    m = np.array(metric, dtype=np.float64)
+    out = np.empty(len(m), np.bool_)
+    final = L.hysteresis(m, lock, unlock, start, out)
+    ref = _reference_hysteresis(metric, lock, unlock, start)
+    assert list(out) == ref
+    assert final == (ref[-1] if ref else start)
+
+
+def test_hysteresis_nan_unlocks():
+    out = np.empty(3, np.bool_)
+    L.hysteresis(np.array([0.9, np.nan, np.nan]), 0.5, 0.2, False, out)
+    assert list(out) == [True, False, False]

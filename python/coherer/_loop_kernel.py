@@ -25,6 +25,24 @@ Robustness: a non-finite or exactly zero sample is a gap; the NCO coasts
 power exceeds ``LIMIT * M2`` is limited to that power (phase kept) before it
 reaches the moments and the detector, so one huge spike cannot upset the
 loop gain.
+
+Lock indicator (internal, drives acquisition): the phase-only statistic
+``mean cos(M arg y - M point_angle)`` over windows of ``lock_window`` samples
+counted from the start of the stream; on noise it has mean 0 and variance
+1/(2N) for every M (REFERENCES 7.2), so ``threshold = z / sqrt(N)`` with
+``z = Qinv(P_FA)/sqrt(2)`` gives an exact false-lock probability.
+
+Cycle slips: a slip is a step of 2*pi/M in the NCO phase relative to the
+carrier. A slow third-order reference tracker (noise bandwidth a fraction of
+B_L, no steady error to a frequency ramp) follows the unwrapped NCO phase;
+its residual ``r`` carries the loop's jitter and, at a slip, a step of
+2*pi/M. When |r| exceeds 3/4 of 2*pi/M (the error has been carried most of
+the way to the neighbouring stable point) the reference jumps by 2*pi/M with
+it, and, while locked, a slip is declared. Noise excursions that return
+before that are not counted. The residual is re-centred when lock is
+declared; the block resets the tracker when it re-steers the NCO. Sign: +1 means the NCO phase advanced by 2*pi/M
+relative to the carrier (the output constellation turned by -2*pi/M).
+No transcendental function is needed: the tracker runs on the NCO steps.
 """
 
 import numpy as np
@@ -44,14 +62,11 @@ S_LOCK_N = 9     # valid samples in this window
 S_LOCK_POS = 10  # samples into this window
 S_LOCKED = 11    # 1.0 locked, 0.0 not
 S_METRIC = 12    # statistic of the last complete window
-S_LP_RE = 13     # low-passed unit detector phasor
-S_LP_IM = 14
-S_PSI = 15       # unwrapped angle of the low-passed phasor, rad (M domain)
-S_PSI_LAST = 16  # last wrapped angle
-S_PSI_REF = 17   # current stable point 2*pi*k, rad
-S_SLIP_POS = 18  # samples since the last angle evaluation
-S_SLIPS = 19     # signed slips declared so far
-STATE_SIZE = 20
+S_REF_R = 13     # slip tracker residual: unwrapped NCO phase minus reference, rad
+S_REF_F = 14     # reference frequency, rad/sample
+S_REF_A = 15     # reference frequency rate, rad/sample^2
+S_SLIPS = 16     # signed slips declared so far
+STATE_SIZE = 17
 
 # params[] layout ------------------------------------------------------------------
 P_K1 = 0
@@ -66,14 +81,15 @@ P_STEP_IN_FREQ = 8   # 1.0: report the whole NCO step as frequency (1st order), 
 P_LOCK_WINDOW = 9    # lock-indicator window, samples
 P_LOCK_Z_ON = 10     # lock when statistic >= z_on / sqrt(N)
 P_LOCK_Z_OFF = 11    # unlock when statistic < z_off / sqrt(N)
-P_SLIP_BETA = 12     # low-pass coefficient of the slip tracker
-P_SLIP_DECIM = 13    # evaluate the slip tracker's angle every this many samples
-PARAMS_SIZE = 14
+P_REF_G1 = 12        # slip reference tracker gains (3rd order, unit detector gain)
+P_REF_G2 = 13
+P_REF_G3 = 14
+PARAMS_SIZE = 15
 
 S_FLOOR = 10.0 ** (-25.0 / 10.0)   # signal-power floor relative to M2 (-25 dB)
 LIMIT = 100.0                      # sample power limit relative to M2 (+20 dB)
 TWO_PI = 2.0 * np.pi
-SLIP_DEPARTURE = 1.5 * np.pi       # M-domain departure that declares a slip
+SLIP_DEPARTURE = 0.75              # fraction of 2*pi/M that declares a slip
 
 
 def new_state():
@@ -118,8 +134,11 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     lock_window = params[P_LOCK_WINDOW]
     z_on = params[P_LOCK_Z_ON]
     z_off = params[P_LOCK_Z_OFF]
-    beta = params[P_SLIP_BETA]
-    slip_decim = params[P_SLIP_DECIM]
+    g1 = params[P_REF_G1]
+    g2 = params[P_REF_G2]
+    g3 = params[P_REF_G3]
+    slip_step = TWO_PI / power
+    slip_threshold = SLIP_DEPARTURE * slip_step
     inv_power = 1.0 / power
     quarter_power = 0.25 * power
 
@@ -136,12 +155,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     lock_pos = state[S_LOCK_POS]
     locked = state[S_LOCKED]
     metric = state[S_METRIC]
-    lp_re = state[S_LP_RE]
-    lp_im = state[S_LP_IM]
-    psi = state[S_PSI]
-    psi_last = state[S_PSI_LAST]
-    psi_ref = state[S_PSI_REF]
-    slip_pos = state[S_SLIP_POS]
+    ref_r = state[S_REF_R]
+    ref_f = state[S_REF_F]
+    ref_a = state[S_REF_A]
     slips = state[S_SLIPS]
 
     want_ref = ref.shape[0] > 0
@@ -197,15 +213,11 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                     acc2 = 0.0
             last_step = k1 * e
             phase += last_step
-            # lock statistic and slip tracker on the unit phasor d/|d|
+            # lock statistic: cos(M arg y) = Re(d)/|d|
             mag = np.sqrt(d.real * d.real + d.imag * d.imag)
             if mag > 0.0:
-                ur = d.real / mag
-                ui = d.imag / mag
-                lock_sum += ur
+                lock_sum += d.real / mag
                 lock_n += 1.0
-                lp_re += beta * (ur - lp_re)
-                lp_im += beta * (ui - lp_im)
             if want_err:
                 e_theta = np.arctan2(d.imag, d.real) * inv_power
         if want_ref:
@@ -218,29 +230,19 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
         if phase >= np.pi or phase < -np.pi:
             phase -= TWO_PI * np.floor((phase + np.pi) / TWO_PI)
 
-        # slip tracker: unwrap the low-passed angle every slip_decim samples
-        slip_pos += 1.0
-        if slip_pos >= slip_decim:
-            slip_pos = 0.0
-            a = np.arctan2(lp_im, lp_re)
-            da = a - psi_last
-            if da > np.pi:
-                da -= TWO_PI
-            elif da < -np.pi:
-                da += TWO_PI
-            psi += da
-            psi_last = a
+        # slip tracker: the reference follows the unwrapped NCO phase (this
+        # sample's step); slips are counted only while locked
+        ref_a += g3 * ref_r
+        ref_f += g2 * ref_r + ref_a
+        ref_r += last_step + acc1 - g1 * ref_r - ref_f
+        if ref_r > slip_threshold or ref_r < -slip_threshold:
+            step = 1.0 if ref_r > 0.0 else -1.0
+            ref_r -= step * slip_step
             if locked > 0.0:
-                dev = psi - psi_ref
-                if dev > SLIP_DEPARTURE or dev < -SLIP_DEPARTURE:
-                    step = 1.0 if dev > 0.0 else -1.0
-                    psi_ref += step * TWO_PI
-                    slips -= step
-                    slip_at[n_slips] = n
-                    slip_count[n_slips] = -int(step)
-                    n_slips += 1
-            else:
-                psi_ref = TWO_PI * np.floor(psi / TWO_PI + 0.5)
+                slips += step
+                slip_at[n_slips] = n
+                slip_count[n_slips] = int(step)
+                n_slips += 1
 
         # lock indicator: decide at the end of each window
         lock_pos += 1.0
@@ -250,8 +252,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                 root_n = np.sqrt(lock_n)
                 if locked > 0.0:
                     locked = 1.0 if metric * root_n >= z_off else 0.0
-                else:
-                    locked = 1.0 if metric * root_n >= z_on else 0.0
+                elif metric * root_n >= z_on:
+                    locked = 1.0
+                    ref_r = 0.0     # the loop is at a stable point now
             lock_sum = 0.0
             lock_n = 0.0
             lock_pos = 0.0
@@ -272,11 +275,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_LOCK_POS] = lock_pos
     state[S_LOCKED] = locked
     state[S_METRIC] = metric
-    state[S_LP_RE] = lp_re
-    state[S_LP_IM] = lp_im
-    state[S_PSI] = psi
-    state[S_PSI_LAST] = psi_last
-    state[S_PSI_REF] = psi_ref
-    state[S_SLIP_POS] = slip_pos
+    state[S_REF_R] = ref_r
+    state[S_REF_F] = ref_f
+    state[S_REF_A] = ref_a
     state[S_SLIPS] = slips
     return n_slips

@@ -18,17 +18,19 @@ from math import log
 import numpy as np
 
 #: zero-padding factor of the periodogram
-PADDING = 16
+PADDING = 4
 #: probability that noise alone produces a reported tone, per estimate
 P_FALSE_TONE = 1e-3
 
 
-def fft_length(noise_bw_hz, sample_rate, minimum=256, maximum=1 << 20):
-    """FFT length (power of two) for acquisition: at least 4 / (B_L T) samples.
+def fft_length(noise_bw_hz, sample_rate, minimum=4096, maximum=1 << 20):
+    """FFT length (power of two) for acquisition: at least 4 / (B_L T) and 4096 samples.
 
     With that length the z^M bin spacing divided by M is at most B_L/4 in the
     carrier domain for M >= 1, so the interpolated estimate lands well inside
-    the loop's lock-in range (about 0.4 B_L for zeta = 0.707).
+    the loop's lock-in range (about 0.4 B_L for zeta = 0.707). The floor of
+    4096 keeps the lock indicator's window (a quarter of this) long enough to
+    see lock at low SNR.
     """
     n = 4.0 * sample_rate / noise_bw_hz
     return int(min(maximum, max(minimum, 1 << int(np.ceil(np.log2(n))))))

@@ -20,9 +20,9 @@ AVERAGING_PER_BT = 8.0
 #: Internal lock indicator: false-lock probability per window on noise, and the
 #: (higher) probability level below which a locked loop is declared unlocked.
 LOCK_P_FALSE = 1e-6
-UNLOCK_P_LEVEL = 1e-2
-#: Slip tracker low-pass coefficient per unit B_L T.
-SLIP_BETA_PER_BT = 4.0
+UNLOCK_P_LEVEL = 1e-1
+#: Noise bandwidth of the slip tracker's reference, as a fraction of B_L.
+SLIP_REFERENCE_BW = 0.05
 #: Most steering events remembered by acquisition_log().
 ACQUISITION_LOG = 100
 
@@ -66,7 +66,8 @@ class mth_power_loop_cc(gr.sync_block):
     Internal lock indicator (``locked()``): the phase-only statistic
     mean cos(M arg y - M point_angle) over windows of a quarter acquisition
     block; lock when it exceeds Qinv(1e-6)/sqrt(2N) (false-lock probability
-    1e-6 per window on noise), unlock below Qinv(1e-2)/sqrt(2N).
+    1e-6 per window on noise), unlock below Qinv(0.1)/sqrt(2N) (on noise alone a locked
+    indicator drops within 1.1 windows on average).
 
     Tags: ``cycle_slip`` (pmt long, signed slips in units of 2*pi/M; +1 = the
     NCO phase advanced by 2*pi/M relative to the carrier) on the sample where a
@@ -155,9 +156,8 @@ class mth_power_loop_cc(gr.sync_block):
         p[K.P_LOCK_WINDOW] = self._lock_window
         p[K.P_LOCK_Z_ON] = norm.isf(LOCK_P_FALSE) / np.sqrt(2.0)
         p[K.P_LOCK_Z_OFF] = norm.isf(UNLOCK_P_LEVEL) / np.sqrt(2.0)
-        beta = min(0.5, SLIP_BETA_PER_BT * d.bt)
-        p[K.P_SLIP_BETA] = beta
-        p[K.P_SLIP_DECIM] = max(1, int(1.0 / (16.0 * beta)))
+        p[K.P_REF_G1], p[K.P_REF_G2], p[K.P_REF_G3] = design.textbook_gains(
+            3, SLIP_REFERENCE_BW * d.bt, 1.0)
         self._params, self._design = p, d      # work() reads self._params once per call
 
     def _warm_up(self):
@@ -180,6 +180,15 @@ class mth_power_loop_cc(gr.sync_block):
         return K.mth_power_loop(x, out, ref, freq, err, marks, mark_freq,
                                 self._slip_at, self._slip_count, state, params, self._power)
 
+    def _set_nco_frequency(self, rad_per_sample):
+        """Re-steer the NCO (work() thread only); the slip tracker follows, so it is not a slip."""
+        st = self._state
+        st[K.S_FREQ] = rad_per_sample
+        st[K.S_ACC2] = 0.0
+        st[K.S_REF_R] = 0.0
+        st[K.S_REF_F] = rad_per_sample
+        st[K.S_REF_A] = 0.0
+
     def _steer(self, sample):
         """End of an acquisition block: if unlocked, estimate the offset from z^M and steer."""
         if self._state[K.S_LOCKED] > 0.0:
@@ -187,8 +196,7 @@ class mth_power_loop_cc(gr.sync_block):
         f = acquisition.estimate_offset(self._acq_buf, self._power, self._fs, self._freq_range)
         if f is None:
             return
-        self._state[K.S_FREQ] = self._hz_to_rad(f)
-        self._state[K.S_ACC2] = 0.0
+        self._set_nco_frequency(self._hz_to_rad(f))
         self._acq_log.append((int(sample), f))
         del self._acq_log[:-ACQUISITION_LOG]
 
@@ -282,8 +290,7 @@ class mth_power_loop_cc(gr.sync_block):
         pending = self._pending_freq
         if pending is not None:
             self._pending_freq = None
-            self._state[K.S_FREQ] = pending
-            self._state[K.S_ACC2] = 0.0
+            self._set_nco_frequency(pending)
         with_diag = self._diagnostics and len(output_items) == 4
         pos = 0
         while pos < n:

@@ -23,8 +23,8 @@ LOCK_P_FALSE = 1e-6
 UNLOCK_P_LEVEL = 1e-1
 #: Noise bandwidth of the slip tracker's reference, as a fraction of B_L.
 SLIP_REFERENCE_BW = 0.05
-#: Most steering events remembered by acquisition_log().
-ACQUISITION_LOG = 100
+#: Most events remembered by acquisition_log() and lock_log().
+EVENT_LOG = 1000
 
 
 def default_point_angle(power):
@@ -117,6 +117,7 @@ class mth_power_loop_cc(gr.sync_block):
         self._lock_window = max(64, self._nfft // 4)
         self._acq_buf = np.zeros(self._nfft, np.complex64)
         self._acq_log = []
+        self._lock_log = []
         self._design = None
         self._params = None
         self._publish(*self._spec)
@@ -198,7 +199,7 @@ class mth_power_loop_cc(gr.sync_block):
             return
         self._set_nco_frequency(self._hz_to_rad(f))
         self._acq_log.append((int(sample), f))
-        del self._acq_log[:-ACQUISITION_LOG]
+        del self._acq_log[:-EVENT_LOG]
 
     # --- runtime control -------------------------------------------------------------
     def set_noise_bw_hz(self, noise_bw_hz):
@@ -273,6 +274,11 @@ class mth_power_loop_cc(gr.sync_block):
         """Samples per acquisition attempt (FFT length); also 4x the lock window."""
         return self._nfft
 
+    def lock_log(self):
+        """Recent changes of the internal lock indicator as (absolute sample, locked).
+        The sample is the end of the window that decided the change."""
+        return list(self._lock_log)
+
     def acquisition_log(self):
         """Recent steering events as (absolute sample, frequency Hz), oldest first."""
         return list(self._acq_log)
@@ -292,16 +298,23 @@ class mth_power_loop_cc(gr.sync_block):
             self._pending_freq = None
             self._set_nco_frequency(pending)
         with_diag = self._diagnostics and len(output_items) == 4
+        window = self._lock_window
         pos = 0
         while pos < n:
-            end = n
-            if self._acquire:           # segments end on absolute FFT-block boundaries
-                end = min(n, pos + self._nfft - (start + pos) % self._nfft)
+            # segments end on absolute lock-window boundaries (FFT blocks are 4 windows)
+            end = min(n, pos + window - (start + pos) % window)
+            if self._acquire:
                 first = (start + pos) % self._nfft
                 self._acq_buf[first:first + end - pos] = x[pos:end]
+            was_locked = self._state[K.S_LOCKED] > 0.0
             self._process(x, output_items, pos, end, start, params, with_diag)
-            if self._acquire and (start + end) % self._nfft == 0:
-                self._steer(start + end)
+            if (start + end) % window == 0:
+                locked = self._state[K.S_LOCKED] > 0.0
+                if locked != was_locked:
+                    self._lock_log.append((start + end, locked))
+                    del self._lock_log[:-EVENT_LOG]
+                if self._acquire and (start + end) % self._nfft == 0:
+                    self._steer(start + end)
             pos = end
         return n
 

@@ -1,0 +1,283 @@
+# SPDX-License-Identifier: GPL-3.0-or-later
+"""``coherer run``: carrier recovery and lock detection over a recording.
+
+Reads a SigMF recording (or a raw I/Q file with --sample-rate and --format),
+runs file source -> conversion -> M-th power loop -> lock detector in a GNU
+Radio flowgraph, prints the events table on stdout and writes the events JSON,
+the report folder and SigMF annotations on request.
+"""
+
+import argparse
+import os
+import sys
+from pathlib import Path
+
+from . import UserError
+
+#: Long-option names of the loop parameters, for error messages.
+_OPTION_NAMES = {"noise_bw_hz": "--noise-bw", "damping": "--damping", "power": "--power",
+                 "loop_order": "--loop-order", "window": "--window", "sample_rate": "sample rate"}
+
+
+# --- argument types (argparse turns their ValueError into exit 2) ------------------------
+
+def positive_float(text):
+    """A finite number > 0."""
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not v > 0 or v == float("inf"):
+        raise argparse.ArgumentTypeError(f"must be a positive number, got {text}")
+    return v
+
+
+def finite_float(text):
+    """Any finite number."""
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if v != v or abs(v) == float("inf"):
+        raise argparse.ArgumentTypeError(f"must be a finite number, got {text}")
+    return v
+
+
+def int_in(lo, hi):
+    """An integer in [lo, hi]."""
+    def parse(text):
+        try:
+            v = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
+        if not lo <= v <= hi:
+            raise argparse.ArgumentTypeError(f"must be an integer in {lo}..{hi}, got {text}")
+        return v
+    return parse
+
+
+def add_loop_options(p, power_required=True, noise_bw_default=None):
+    """Loop and detector options shared by ``run`` and ``demo``."""
+    from ..design import MAX_BT, MAX_DAMPING, MAX_POWER
+    from ..lock_detector_cc import MAX_WINDOW, MIN_WINDOW
+
+    g = p.add_argument_group("carrier loop and lock detector")
+    g.add_argument("--power", type=int_in(1, MAX_POWER), required=power_required, metavar="M",
+                   default=None if power_required else 2,
+                   help="modulation symmetry order M: 1 pilot/residual carrier, 2 BPSK, 4 QPSK, 8 8PSK"
+                        + ("" if power_required else " (default 2)"))
+    g.add_argument("--noise-bw", type=positive_float, required=noise_bw_default is None, metavar="HZ",
+                   default=noise_bw_default,
+                   help=f"loop noise bandwidth B_L, Hz (one-sided, carrier-phase domain; at most "
+                        f"{MAX_BT:g} x sample rate)" + ("" if noise_bw_default is None
+                                                       else f" (default {noise_bw_default:g})"))
+    g.add_argument("--damping", type=positive_float, default=0.707, metavar="ZETA",
+                   help=f"damping factor, (0, {MAX_DAMPING:g}] (default 0.707)")
+    g.add_argument("--loop-order", type=int_in(1, 3), default=2, metavar="N",
+                   help="loop order 1, 2 or 3 (3 follows a Doppler ramp; default 2)")
+    g.add_argument("--window", type=int_in(MIN_WINDOW, MAX_WINDOW), default=1024, metavar="N",
+                   help=f"lock-detector window, samples, {MIN_WINDOW}..{MAX_WINDOW} (default 1024)")
+    g.add_argument("--freq-guess", type=finite_float, default=0.0, metavar="HZ",
+                   help="where the NCO starts, Hz from the capture centre (default 0; wide "
+                        "acquisition finds offsets up to +-sample rate/(2M) anyway)")
+
+
+def register(subparsers):
+    p = subparsers.add_parser(
+        "run", help="recover the carrier of a recording; report locks, slips, offset, Es/N0",
+        description="Run carrier recovery (M-th power loop) and lock detection over a SigMF "
+                    "recording or a raw I/Q file. Prints the events table on stdout.",
+        epilog="Exit status: 0 ok, 2 bad arguments or unreadable/invalid input (one line on "
+               "stderr), 1 internal error, 130 interrupted.")
+    p.add_argument("recording", metavar="RECORDING",
+                   help="SigMF .sigmf-meta / .sigmf-data pair or .sigmf archive; or a raw file "
+                        "with --sample-rate and --format")
+    add_loop_options(p)
+    g = p.add_argument_group("raw files")
+    g.add_argument("--sample-rate", type=positive_float, metavar="HZ",
+                   help="sample rate of a raw file, samples/s")
+    g.add_argument("--format", choices=("cf32_le", "ci16_le", "ci8", "cu8"), metavar="FMT",
+                   help="sample format of a raw file: cf32_le, ci16_le, ci8 or cu8 (interleaved I/Q)")
+    g = p.add_argument_group("outputs")
+    g.add_argument("--events", metavar="FILE.json", help="write the events list as JSON")
+    g.add_argument("--report", metavar="DIR",
+                   help="write timeline.png, constellation.png and summary.json into DIR")
+    g.add_argument("--annotate", action="store_true",
+                   help="add SigMF annotations (locked intervals, cycle slips) to the .sigmf-meta file")
+    p.set_defaults(func=main)
+    return p
+
+
+# --- the sub-command ------------------------------------------------------------------------
+
+def _check_output_file(path, what):
+    parent = Path(path).resolve().parent
+    if not parent.is_dir():
+        raise UserError(f"{what} {path}: folder {parent} does not exist")
+    if Path(path).is_dir():
+        raise UserError(f"{what} {path} is a folder")
+    if not os.access(parent, os.W_OK):
+        raise UserError(f"{what} {path}: folder {parent} is not writable")
+
+
+def _check_output_dir(path, what):
+    p = Path(path)
+    if p.exists() and not p.is_dir():
+        raise UserError(f"{what} {path} exists and is not a folder")
+    parent = p.resolve().parent
+    if not p.exists() and not parent.is_dir():
+        raise UserError(f"{what} {path}: folder {parent} does not exist")
+    if not os.access(p if p.exists() else parent, os.W_OK):
+        raise UserError(f"{what} {path} is not writable")
+
+
+def settings_from_args(args):
+    """ReceiverSettings from parsed options (not yet checked against the sample rate)."""
+    from ..receiver import ReceiverSettings
+    return ReceiverSettings(power=args.power, noise_bw_hz=args.noise_bw, damping=args.damping,
+                            loop_order=args.loop_order, window=args.window,
+                            freq_guess_hz=args.freq_guess)
+
+
+def check_settings(settings, rec):
+    """Check loop settings against the recording; raise UserError naming the option."""
+    from ..design import validate_spec
+    try:
+        validate_spec(rec.sample_rate, settings.power, settings.noise_bw_hz, settings.damping,
+                      settings.loop_order)
+    except ValueError as exc:
+        raise UserError(_option_message(str(exc))) from None
+    limit = rec.sample_rate / (2.0 * settings.power)
+    if abs(settings.freq_guess_hz) > limit:
+        raise UserError(f"--freq-guess must be within +-sample rate/(2M) = +-{limit:g} Hz, "
+                        f"got {settings.freq_guess_hz:g}")
+    if settings.window > rec.num_samples:
+        raise UserError(f"--window {settings.window} is longer than the recording "
+                        f"({rec.num_samples} samples)")
+
+
+def _option_message(msg):
+    name = msg.split(" ", 1)[0]
+    if name in _OPTION_NAMES:
+        return f"{_OPTION_NAMES[name]}: {msg}"
+    return msg
+
+
+def open_input(args):
+    from ..recording import RecordingError, open_recording
+    try:
+        return open_recording(args.recording, args.sample_rate, args.format)
+    except RecordingError as exc:
+        raise UserError(str(exc)) from None
+
+
+def process(rec, settings, out, events_path=None):
+    """Run the receiver over ``rec``, print warnings (stderr) and the events table (``out``),
+    write the events JSON. Returns the RunResult."""
+    from .. import report
+    from ..receiver import run_receiver
+    from .console import Progress, events_table
+
+    for note in rec.warnings:
+        print(f"coherer: warning: {note}", file=sys.stderr)
+    bar = Progress("coherer run")
+    try:
+        result = run_receiver(rec, settings, progress=bar)
+    except ValueError as exc:      # a block rejected a setting
+        raise UserError(_option_message(str(exc))) from None
+    finally:
+        bar.close()
+    if result.num_samples < rec.num_samples:
+        print(f"coherer: note: the last {rec.num_samples - result.num_samples} sample(s), less than "
+              f"one {settings.window}-sample detector window, were not processed", file=sys.stderr)
+    out.write(events_table(result.events, rec.center_freq_hz) + "\n")
+    out.write(summary_line(result) + "\n")
+    if events_path:
+        report.write_json(events_path, result.events)
+    return result
+
+
+def summary_line(result):
+    """One line: locked time, first lock, offset, slips."""
+    fs = result.recording.sample_rate
+    ivs = result.interval_summaries()
+    locked = sum(iv["end_sample"] - iv["start_sample"] for iv in ivs) / fs
+    slips = sum(e["slips"] for e in result.events if e["event"] == "cycle_slip")
+    n_slip = sum(1 for e in result.events if e["event"] == "cycle_slip")
+    text = (f"locked {locked:.2f} s of {result.num_samples / fs:.2f} s in {len(ivs)} interval(s); "
+            f"{n_slip} cycle-slip event(s), net {slips:+d} x 2pi/{result.settings.power}")
+    if ivs and "freq_hz" in ivs[0]:
+        text += f"; first lock at {ivs[0]['start_s']:.3f} s, mean offset {ivs[0]['freq_hz']:+.2f} Hz"
+        if "esn0_db" in ivs[0]:
+            text += f", Es/N0 {ivs[0]['esn0_db']:.1f} dB"
+    return text
+
+
+def annotations(result):
+    """SigMF annotations: one per locked interval and one per cycle slip."""
+    from ..recording import EXTENSION
+    ns = EXTENSION["name"]
+    rec = result.recording
+    notes = []
+    for iv in result.interval_summaries():
+        a = {"core:sample_start": iv["start_sample"],
+             "core:sample_count": iv["end_sample"] - iv["start_sample"],
+             "core:label": "carrier locked"}
+        comment = f"M={result.settings.power} loop, B_L {result.settings.noise_bw_hz:g} Hz"
+        if "freq_hz" in iv:
+            a[f"{ns}:freq_hz"] = round(iv["freq_hz"], 6)
+            comment += f"; carrier offset {iv['freq_hz']:+.2f} Hz"
+            if rec.center_freq_hz is not None:
+                a[f"{ns}:carrier_hz"] = round(iv["carrier_hz"], 3)
+        if "esn0_db" in iv and abs(iv["esn0_db"]) != float("inf"):
+            a[f"{ns}:esn0_db"] = round(iv["esn0_db"], 3)
+            comment += f"; mean Es/N0 {iv['esn0_db']:.1f} dB"
+        if "metric" in iv:
+            a[f"{ns}:metric"] = round(iv["metric"], 4)
+        a["core:comment"] = comment
+        notes.append(a)
+    for e in result.events:
+        if e["event"] == "cycle_slip":
+            notes.append({"core:sample_start": e["sample"], "core:sample_count": 1,
+                          "core:label": f"cycle slip {e['slips']:+d}",
+                          "core:comment": f"{e['slips']:+d} x 2pi/{result.settings.power} carrier "
+                                          f"phase slip declared by the loop",
+                          f"{ns}:slips": e["slips"], f"{ns}:freq_hz": round(e["freq_hz"], 6)})
+    return notes
+
+
+def main(args):
+    from ..recording import RecordingError, merge_annotations
+    from .console import clean_stdout
+
+    rec = open_input(args)
+    settings = settings_from_args(args)
+    check_settings(settings, rec)
+    if args.events:
+        _check_output_file(args.events, "--events")
+    if args.report:
+        _check_output_dir(args.report, "--report")
+    if args.annotate:
+        if rec.meta_path is None:
+            raise UserError("--annotate needs a .sigmf-meta / .sigmf-data pair "
+                            f"(not a {'SigMF archive' if rec.kind == 'archive' else 'raw file'})")
+        if not os.access(rec.meta_path, os.W_OK) or not os.access(rec.meta_path.parent, os.W_OK):
+            raise UserError(f"--annotate: {rec.meta_path} or its folder is not writable")
+
+    try:
+        with clean_stdout() as out:
+            result = process(rec, settings, out, args.events)
+            if args.report:
+                from .. import report
+                report.write_report(result, args.report)
+                out.write(f"report written to {args.report}\n")
+            if args.annotate:
+                try:
+                    merge_annotations(rec.meta_path, annotations(result))
+                except RecordingError as exc:
+                    raise UserError(str(exc)) from None
+                out.write(f"annotations added to {rec.meta_path}\n")
+    except KeyboardInterrupt:
+        print("coherer: interrupted; nothing was annotated", file=sys.stderr)
+        return 130
+    return 0

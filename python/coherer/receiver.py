@@ -1,0 +1,339 @@
+# SPDX-License-Identifier: GPL-3.0-or-later
+"""The headless receive chain: file source -> format conversion -> M-th power
+loop -> lock detector -> collector, run over a recording; returns what happened.
+
+Used by ``coherer run`` and ``coherer demo``. The collector is a sink that keeps
+the events (lock, unlock, cycle slip), the per-window status (lock metric,
+Es/N0), per-interval statistics, and decimated traces for the plots. Nothing
+here prints: progress is reported through a callback.
+"""
+
+import threading
+import time
+from dataclasses import dataclass, field
+from math import ceil, pi
+
+import numpy as np
+import pmt
+from gnuradio import blocks, gr
+
+from . import design, metadata
+from .lock_detector_cc import lock_detector_cc
+from .mth_power_loop_cc import mth_power_loop_cc
+
+#: Decimated traces keep at most about this many points per quantity.
+MAX_TRACE_POINTS = 200_000
+#: Aim for at most about this many status points over a recording.
+MAX_STATUS_POINTS = 20_000
+
+
+@dataclass(frozen=True)
+class ReceiverSettings:
+    """Loop and detector settings (units as in the blocks)."""
+    power: int                     #: symmetry order M
+    noise_bw_hz: float             #: loop noise bandwidth B_L, Hz
+    damping: float = 0.707
+    loop_order: int = 2
+    window: int = 1024             #: lock-detector window, samples
+    freq_guess_hz: float = 0.0     #: NCO start frequency, Hz
+    lock_threshold: float = None
+    unlock_threshold: float = None
+
+
+@dataclass
+class Interval:
+    """One locked interval ``[start, end)`` in samples, with its statistics."""
+    start: int
+    end: int
+    freq_sum: float = 0.0          #: sum of NCO frequency (Hz) over the interval
+    freq_count: int = 0
+    esn0_lin: list = field(default_factory=list)    #: status Es/N0 (linear) inside
+    metric: list = field(default_factory=list)
+
+    def summary(self, sample_rate, center_freq_hz=None):
+        """JSON-ready description (times in s, frequencies in Hz, Es/N0 in dB)."""
+        d = {"start_sample": int(self.start), "end_sample": int(self.end),
+             "start_s": self.start / sample_rate, "end_s": self.end / sample_rate,
+             "duration_s": (self.end - self.start) / sample_rate}
+        if self.freq_count:
+            d["freq_hz"] = self.freq_sum / self.freq_count
+            if center_freq_hz is not None:
+                d["carrier_hz"] = center_freq_hz + d["freq_hz"]
+        if self.esn0_lin:
+            d["esn0_db"] = _db(np.mean(self.esn0_lin))
+        if self.metric:
+            d["metric"] = float(np.mean(self.metric))
+        return d
+
+
+def _db(x):
+    return 10.0 * np.log10(x) if x > 0 else float("-inf")
+
+
+class _collector(gr.sync_block):
+    """Sink that records events, status and decimated traces.
+
+    Inputs: 0 detector output (corrected samples with all tags), 1 the loop's input,
+    2 NCO frequency (Hz), 3 the loop's reference e^{j theta^}.
+    """
+
+    def __init__(self, sample_rate, decimation):
+        gr.sync_block.__init__(self, name="coherer_collector",
+                               in_sig=[np.complex64, np.complex64, np.float32, np.complex64],
+                               out_sig=None)
+        self._fs = float(sample_rate)
+        self._trace_step = int(decimation)
+        self.events = []
+        self.status = []              # (sample, metric, esn0_db, locked)
+        self.intervals = []
+        self._open = None             # the Interval being accumulated while locked
+        self._trace = {"sample": [], "before": [], "after": [], "freq": [], "phase": []}
+        self.progress = 0
+        self.error = None             # first exception caught in work(), if any
+
+    # --- streaming --------------------------------------------------------------------
+    def work(self, input_items, output_items):
+        n = len(input_items[0])
+        try:
+            self._consume(input_items, n)
+        except Exception as exc:      # work() must never raise; reported after the run
+            if self.error is None:
+                self.error = exc
+        self.progress = self.nitems_read(0) + n
+        return n
+
+    def _consume(self, ins, n):
+        start = self.nitems_read(0)
+        freq = ins[2]
+        bounds = []                   # relative offsets where the lock state changes
+        for tag in self.get_tags_in_window(0, 0, n):
+            rel = tag.offset - start
+            key = pmt.symbol_to_string(tag.key)
+            if key == metadata.CARRIER_LOCK:
+                bounds.append((rel, bool(pmt.to_bool(tag.value))))
+            elif key == metadata.CYCLE_SLIP:
+                self.events.append({"event": "cycle_slip", "sample": int(tag.offset),
+                                    "time_s": tag.offset / self._fs, "freq_hz": float(freq[rel]),
+                                    "slips": int(pmt.to_long(tag.value))})
+            elif key == metadata.CARRIER_STATUS:
+                self._on_status(tag.value)
+        # per-interval frequency sums, split at the lock-state changes in this call
+        pos = 0
+        for rel, locked in sorted(bounds, key=lambda b: b[0]):
+            self._accumulate(freq, pos, rel)
+            pos = rel
+            self._on_lock_change(start + rel, locked, float(freq[rel]))
+        self._accumulate(freq, pos, n)
+        # decimated traces
+        first = (-start) % self._trace_step
+        idx = np.arange(first, n, self._trace_step)
+        if len(idx):
+            t = self._trace
+            t["sample"].append(start + idx)
+            t["before"].append(ins[1][idx].copy())
+            t["after"].append(ins[0][idx].copy())
+            t["freq"].append(freq[idx].copy())
+            t["phase"].append(np.angle(ins[3][idx]).astype(np.float32))
+
+    def _accumulate(self, freq, lo, hi):
+        if self._open is not None and hi > lo:
+            self._open.freq_sum += float(np.sum(freq[lo:hi], dtype=np.float64))
+            self._open.freq_count += hi - lo
+
+    def _on_lock_change(self, sample, locked, freq_hz):
+        event = {"event": "lock" if locked else "unlock", "sample": int(sample),
+                 "time_s": sample / self._fs, "freq_hz": freq_hz}
+        self.events.append(event)
+        if locked and self._open is None:
+            self._open = Interval(int(sample), int(sample))
+        elif not locked and self._open is not None:
+            self._open.end = int(sample)
+            self.intervals.append(self._open)
+            self._open = None
+
+    def _on_status(self, value):
+        d = pmt.to_python(value)
+        if not isinstance(d, dict):
+            return
+        sample = int(d.get(metadata.ST_SAMPLE, 0))
+        metric = float(d.get(metadata.ST_METRIC, np.nan))
+        esn0_db = float(d.get(metadata.ST_ESN0_DB, np.nan))
+        locked = bool(d.get(metadata.ST_LOCKED, False))
+        self.status.append((sample, metric, esn0_db, locked))
+        if self._open is not None and locked:
+            if np.isfinite(esn0_db):
+                self._open.esn0_lin.append(10.0 ** (esn0_db / 10.0))
+            if np.isfinite(metric):
+                self._open.metric.append(metric)
+
+    # --- after the run ----------------------------------------------------------------
+    def finish(self, total):
+        """Close an interval still open at the end of the stream (``total`` samples)."""
+        if self._open is not None:
+            self._open.end = int(total)
+            self.intervals.append(self._open)
+            self._open = None
+
+    def traces(self):
+        """Decimated traces as numpy arrays: sample, before, after, freq (Hz), phase (rad)."""
+        out = {}
+        for k, chunks in self._trace.items():
+            out[k] = np.concatenate(chunks) if chunks else np.zeros(0)
+        return out
+
+
+@dataclass
+class RunResult:
+    """Everything a run produced (times in s, frequencies in Hz)."""
+    recording: object
+    settings: ReceiverSettings
+    num_samples: int                 #: samples processed (whole detector windows)
+    events: list
+    intervals: list                  #: list of :class:`Interval`
+    status: np.ndarray               #: rows (sample, metric, esn0_db, locked)
+    traces: dict
+    thresholds: tuple                #: (lock, unlock) thresholds of the detector
+    loop_design: object              #: :class:`coherer.design.LoopDesign`
+    wall_s: float
+
+    def interval_summaries(self):
+        rec = self.recording
+        return [iv.summary(rec.sample_rate, rec.center_freq_hz) for iv in self.intervals]
+
+    def predicted_phase_rms_rad(self, esn0_db):
+        """Linear-theory phase-error RMS (rad) of this loop at Es/N0 ``esn0_db`` (dB)."""
+        var = design.phase_error_variance(self.settings.power, design.db_to_linear(esn0_db),
+                                          self.loop_design.actual_bt)
+        return float(np.sqrt(var))
+
+
+class ReceiverError(RuntimeError):
+    """The flowgraph failed while running (an internal problem, not bad input)."""
+
+
+def _source_chain(tb, rec):
+    """File source plus conversion to complex64; returns the block to connect from,
+    and the list of blocks (kept referenced while the flowgraph lives)."""
+    fmt = rec.fmt
+    item = fmt.component_bytes if fmt.name != "cf32_le" else fmt.sample_bytes
+    n_items = rec.num_samples * (fmt.sample_bytes // item)
+    chain = []
+    if rec.data_offset % item == 0:
+        chain.append(blocks.file_source(item, str(rec.data_path), False,
+                                        rec.data_offset // item, n_items))
+    else:      # unaligned header: read bytes, regroup into items
+        chain.append(blocks.file_source(1, str(rec.data_path), False, rec.data_offset, n_items * item))
+        chain.append(blocks.stream_to_vector(1, item))
+    if fmt.name == "ci16_le":
+        chain.append(blocks.interleaved_short_to_complex(False, False, 32768.0))
+    elif fmt.name == "ci8":
+        chain.append(blocks.interleaved_char_to_complex(False, 128.0))
+    elif fmt.name == "cu8":
+        chain += [blocks.uchar_to_float(), blocks.add_const_ff(-fmt.offset),
+                  blocks.multiply_const_ff(fmt.scale)]
+    for a, b in zip(chain, chain[1:]):
+        tb.connect(a, b)
+    if fmt.name == "cu8":
+        deint = blocks.deinterleave(gr.sizeof_float)
+        to_c = blocks.float_to_complex()
+        tb.connect(chain[-1], deint)
+        tb.connect((deint, 0), (to_c, 0))
+        tb.connect((deint, 1), (to_c, 1))
+        chain += [deint, to_c]
+    return chain[-1], chain
+
+
+def run_receiver(rec, settings, progress=None):
+    """Run the receive chain over recording ``rec`` (a :class:`coherer.recording.Recording`).
+
+    ``progress(done_samples, total_samples)`` is called about five times a second
+    while the flowgraph runs. Raises ``ValueError`` for settings the blocks reject and
+    :class:`ReceiverError` if the flowgraph fails.
+    """
+    fs = rec.sample_rate
+    total = rec.num_samples
+    # status once per k whole windows, so every status sample is a window start
+    status_interval = settings.window * max(1, int(ceil(total / MAX_STATUS_POINTS / settings.window)))
+    decimation = max(1, int(ceil(total / MAX_TRACE_POINTS)))
+
+    loop = mth_power_loop_cc(fs, settings.power, settings.noise_bw_hz, settings.damping,
+                             settings.loop_order, freq_guess_hz=settings.freq_guess_hz,
+                             acquire=True, diagnostics=True)
+    det = lock_detector_cc(fs, settings.power, window=settings.window,
+                           lock_threshold=settings.lock_threshold,
+                           unlock_threshold=settings.unlock_threshold,
+                           status_interval=status_interval)
+    sink = _collector(fs, decimation)
+    err_sink = blocks.null_sink(gr.sizeof_float)
+
+    tb = gr.top_block("coherer_run")
+    head, chain = _source_chain(tb, rec)
+    tb.connect(head, (loop, 0))
+    tb.connect((loop, 0), det, (sink, 0))
+    tb.connect(head, (sink, 1))
+    tb.connect((loop, 2), (sink, 2))
+    tb.connect((loop, 1), (sink, 3))
+    tb.connect((loop, 3), err_sink)
+
+    t0 = time.monotonic()
+    finished = threading.Event()
+    tb.start()
+    waiter = threading.Thread(target=lambda: (tb.wait(), finished.set()), daemon=True)
+    waiter.start()
+    try:
+        while not finished.wait(0.2):
+            if sink.error is not None:
+                break
+            if progress is not None:
+                progress(sink.progress, total)
+    finally:
+        if not finished.is_set():
+            tb.stop()
+            finished.wait()
+    if sink.error is not None:
+        raise ReceiverError(f"collector failed: {sink.error!r}")
+    # the detector releases whole windows only: a last partial window is not processed
+    processed = sink.progress
+    if progress is not None:
+        progress(processed, total)
+    sink.finish(processed)
+
+    thresholds = (_getter(det, "lock_threshold"), _getter(det, "unlock_threshold"))
+    status = np.array(sink.status, dtype=float).reshape(-1, 4)
+    events = sorted(sink.events, key=lambda e: (e["sample"], e["event"] != "cycle_slip"))
+    _enrich_lock_events(events, status)
+    if rec.center_freq_hz is not None:
+        for e in events:
+            if e["event"] == "lock":
+                e["carrier_hz"] = rec.center_freq_hz + e["freq_hz"]
+    return RunResult(rec, settings, processed, events, sink.intervals, status, sink.traces(),
+                     thresholds, loop.loop_design(), time.monotonic() - t0)
+
+
+def _getter(blk, name):
+    f = getattr(blk, name, None)
+    try:
+        return float(f()) if callable(f) else None
+    except (TypeError, ValueError):
+        return None
+
+
+def _enrich_lock_events(events, status):
+    """Give each lock/unlock event the metric and Es/N0 of the first status report at
+    or after its sample (the detector reports once per status interval)."""
+    if not len(status):
+        return
+    samples = status[:, 0]
+    for e in events:
+        if e["event"] not in ("lock", "unlock"):
+            continue
+        i = int(np.searchsorted(samples, e["sample"]))
+        if i < len(samples):
+            if np.isfinite(status[i, 1]):
+                e["metric"] = float(status[i, 1])
+            if np.isfinite(status[i, 2]):
+                e["esn0_db"] = float(status[i, 2])
+
+
+__all__ = ["ReceiverSettings", "Interval", "RunResult", "ReceiverError", "run_receiver",
+           "MAX_TRACE_POINTS", "MAX_STATUS_POINTS"]

@@ -16,7 +16,9 @@ Per sample n (x = input, theta^ = NCO phase, rad; v = NCO step, rad/sample)::
 
 ``A_M = S^(M/2)`` where ``S`` is the M2M4 estimate of the signal power
 (``S = sqrt(2 M2^2 - M4)``, Pauluzzi & Beaulieu 2000) from exponentially
-averaged moments of |x|^2 and |x|^4, floored at ``S_FLOOR * M2``. Normalising
+averaged moments of |x|^2 and |x|^4, floored so that the gain boost
+``(M2/S)^(M/2)`` stays bounded. The loop stays open (the NCO coasts) for the
+first few hundred samples, until the moments have settled. Normalising
 by the signal part (not total power) keeps the detector gain at exactly M and
 hence the loop noise bandwidth at its design value for any amplitude and SNR.
 
@@ -84,9 +86,10 @@ P_LOCK_Z_OFF = 11    # unlock when statistic < z_off / sqrt(N)
 P_REF_G1 = 12        # slip reference tracker gains (3rd order, unit detector gain)
 P_REF_G2 = 13
 P_REF_G3 = 14
-PARAMS_SIZE = 15
+P_SIG2_FLOOR = 15    # floor of (S/M2)^2: caps the detector-gain boost at low SNR
+P_START_MW = 16      # the loop closes once the moment weight reaches this (start-up)
+PARAMS_SIZE = 17
 
-S_FLOOR = 10.0 ** (-25.0 / 10.0)   # signal-power floor relative to M2 (-25 dB)
 LIMIT = 100.0                      # sample power limit relative to M2 (+20 dB)
 TWO_PI = 2.0 * np.pi
 SLIP_DEPARTURE = 0.75              # fraction of 2*pi/M that declares a slip
@@ -140,6 +143,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     slip_step = TWO_PI / power
     slip_threshold = SLIP_DEPARTURE * slip_step
     inv_power = 1.0 / power
+    sig2_floor = params[P_SIG2_FLOOR]
+    start_mw = params[P_START_MW]
     quarter_power = 0.25 * power
 
     phase = state[S_PHASE]
@@ -197,10 +202,12 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             mw += alpha * (1.0 - mw)
             mm2 = m2 / mw
             sig2 = 2.0 - (m4 / mw) / (mm2 * mm2)   # (S / M2)^2 from M2M4
-            if sig2 < S_FLOOR * S_FLOOR:
-                sig2 = S_FLOOR * S_FLOOR
+            if sig2 < sig2_floor:
+                sig2 = sig2_floor
             d = _cpow(y * (1.0 / np.sqrt(mm2)), power) * rot
             e = d.imag / sig2 ** quarter_power   # / (S/M2)^(M/2): mean sin(M phi)
+            if mw < start_mw:
+                e = 0.0                          # start-up: moments not settled yet, coast
             acc2 += k3 * e
             acc1 += k2 * e + acc2
             if acc1 > fmax:

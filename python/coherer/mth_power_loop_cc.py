@@ -17,6 +17,12 @@ from . import acquisition, design, metadata
 #: at least this many, and at least AVERAGING_PER_BT / (B_L T).
 MIN_AVERAGING = 4096
 AVERAGING_PER_BT = 8.0
+#: Detector normalisation limits: the signal fraction S/M2 used is at least
+#: max(MIN_SIGNAL_FRACTION, MAX_GAIN_BOOST^(-2/M)), so the gain boost (M2/S)^(M/2)
+#: never exceeds MAX_GAIN_BOOST; the loop closes after START_SAMPLES samples.
+MIN_SIGNAL_FRACTION = 1e-4
+MAX_GAIN_BOOST = 1e4
+START_SAMPLES = 256
 #: Internal lock indicator: false-lock probability per window on noise, and the
 #: (higher) probability level below which a locked loop is declared unlocked.
 LOCK_P_FALSE = 1e-6
@@ -159,6 +165,9 @@ class mth_power_loop_cc(gr.sync_block):
         p[K.P_LOCK_Z_OFF] = norm.isf(UNLOCK_P_LEVEL) / np.sqrt(2.0)
         p[K.P_REF_G1], p[K.P_REF_G2], p[K.P_REF_G3] = design.textbook_gains(
             3, SLIP_REFERENCE_BW * d.bt, 1.0)
+        s_min = max(MIN_SIGNAL_FRACTION, MAX_GAIN_BOOST ** (-2.0 / self._power))
+        p[K.P_SIG2_FLOOR] = s_min * s_min
+        p[K.P_START_MW] = 1.0 - (1.0 - p[K.P_ALPHA]) ** START_SAMPLES
         self._params, self._design = p, d      # work() reads self._params once per call
 
     def _warm_up(self):

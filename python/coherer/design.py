@@ -37,6 +37,7 @@ from dataclasses import dataclass
 from math import comb, factorial, fsum, inf, pi, sqrt
 
 import numpy as np
+from numba import njit
 from scipy import optimize, signal, special
 
 #: Largest B_L * T (noise bandwidth over sample rate) the blocks accept.
@@ -617,19 +618,40 @@ class StepResponses:
     error_settling_time_s: float    #: |phi - final| within SETTLING_BAND of the peak from then on
 
 
+@njit(nogil=True, cache=True)
+def _linear_loop(phi0, freq, gk1, gk2, gk3, phi_out, step_out):
+    """Linearised loop in the kernel's accumulator form, driven by a constant input frequency.
+
+    ``phi0``: phase error at sample 0 (rad); ``freq``: input phase increment per sample (rad).
+    Writes the phase error ``phi[n]`` and the NCO step ``v[n] = theta^[n+1] - theta^[n]``.
+    The accumulator form stays exact for very narrow loops, where the coefficients of
+    :func:`closed_loop` no longer resolve ``g K3`` (3rd order below B_L T ~ 1e-4).
+    """
+    phi = phi0
+    acc1 = 0.0
+    acc2 = 0.0
+    for n in range(phi_out.shape[0]):
+        phi_out[n] = phi
+        acc2 += gk3 * phi
+        acc1 += gk2 * phi + acc2
+        v = gk1 * phi + acc1
+        step_out[n] = v
+        phi += freq - v
+
+
 def step_responses(design, n_samples=None):
-    """Simulate the linear phase-domain loop (``scipy.signal.lfilter`` on :func:`closed_loop`)
-    for a unit phase step and a 1 Hz frequency step applied at sample 0."""
+    """Simulate the linear phase-domain loop with the design's ``g_gains`` for a unit phase step
+    and a 1 Hz frequency step applied at sample 0 (same recursion as the kernel; agrees with
+    ``scipy.signal.lfilter`` on :func:`closed_loop` wherever that is well conditioned)."""
     n = response_length(design) if n_samples is None else int(n_samples)
     fs = design.sample_rate
-    b, a = closed_loop(design.g_gains)
-    step = np.ones(n)
-    phase = signal.lfilter(b, a, step)
-    # the input frequency theta[k] - theta[k-1] of the ramp theta[k] = 2 pi k / fs is a step delayed by one sample
-    delayed = np.concatenate(([0.0], step[:-1]))
-    nco = signal.lfilter(b, a, delayed)
-    ramp = 2.0 * pi * np.arange(n) / fs
-    error = signal.lfilter(np.asarray(a) - np.asarray(b), a, ramp)      # (1 - H) applied directly
+    gk1, gk2, gk3 = (float(g) for g in design.g_gains)
+    phase_error, unused = np.empty(n), np.empty(n)
+    _linear_loop(1.0, 0.0, gk1, gk2, gk3, phase_error, unused)
+    error, nco_step = np.empty(n), np.empty(n)
+    _linear_loop(0.0, 2.0 * pi / fs, gk1, gk2, gk3, error, nco_step)
+    phase = 1.0 - phase_error                              # theta^ per unit phase step
+    nco = np.concatenate(([0.0], nco_step[:-1])) * fs / (2.0 * pi)   # NCO frequency in use at sample n, Hz/Hz
     final_error = design.frequency_step_error(1.0)
     i_peak = int(np.argmax(np.abs(error)))
     peak = float(abs(error[i_peak]))
@@ -641,9 +663,17 @@ def step_responses(design, n_samples=None):
 
 
 def closed_loop_magnitude_db(design, freqs_hz):
-    """Closed-loop gain ``20 log10 |H(e^{j 2 pi f / fs})|`` (dB) at the frequencies ``freqs_hz`` (Hz)."""
-    b, a = closed_loop(design.g_gains)
-    _, h = signal.freqz(b, a, worN=np.asarray(freqs_hz, dtype=float), fs=design.sample_rate)
+    """Closed-loop gain ``20 log10 |H(e^{j 2 pi f / fs})|`` (dB) at the frequencies ``freqs_hz`` (Hz).
+
+    Evaluated as ``z^-1 N(u) / (u^d + z^-1 N(u))`` with ``u = 1 - z^-1 = 2j sin(w/2) e^{-jw/2}``
+    (see :func:`closed_loop`), which keeps full precision for very narrow loops.
+    """
+    w = 2.0 * pi * np.asarray(freqs_hz, dtype=float) / design.sample_rate
+    z_inv = np.exp(-1j * w)
+    u = 2j * np.sin(w / 2.0) * np.exp(-0.5j * w)
+    order = design.loop_order
+    n_u = sum(design.g_gains[i] * u ** (order - 1 - i) for i in range(order))
+    h = z_inv * n_u / (u ** order + z_inv * n_u)
     return 20.0 * np.log10(np.maximum(np.abs(h), 1e-300))
 
 

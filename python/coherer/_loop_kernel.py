@@ -26,7 +26,9 @@ Robustness: a non-finite or exactly zero sample is a gap; the NCO coasts
 (theta^ += acc1), nothing else changes, and the output is 0. A sample whose
 power exceeds ``LIMIT * M2`` is limited to that power (phase kept) before it
 reaches the moments and the detector, so one huge spike cannot upset the
-loop gain.
+loop gain; a lasting level step of 20 dB or more (seen by a fast average over
+64 samples) rescales the moments at once, so the gain recovers quickly after a
+fade or a gain change.
 
 Lock indicator (internal, drives acquisition): the phase-only statistic
 ``mean cos(M arg y - M point_angle)`` over windows of ``lock_window`` samples
@@ -68,7 +70,8 @@ S_REF_R = 13     # slip tracker residual: unwrapped NCO phase minus reference, r
 S_REF_F = 14     # reference frequency, rad/sample
 S_REF_A = 15     # reference frequency rate, rad/sample^2
 S_SLIPS = 16     # signed slips declared so far
-STATE_SIZE = 17
+S_FAST_M2 = 17   # fast exponential average of |x|^2 (level-step detector)
+STATE_SIZE = 18
 
 # params[] layout ------------------------------------------------------------------
 P_K1 = 0
@@ -91,6 +94,8 @@ P_START_MW = 16      # the loop closes once the moment weight reaches this (star
 PARAMS_SIZE = 17
 
 LIMIT = 100.0                      # sample power limit relative to M2 (+20 dB)
+FAST_ALPHA = 1.0 / 64.0            # averaging coefficient of the level-step detector
+LEVEL_STEP = 100.0                 # a level change of 20 dB rescales the moments
 TWO_PI = 2.0 * np.pi
 SLIP_DEPARTURE = 0.75              # fraction of 2*pi/M that declares a slip
 
@@ -164,6 +169,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     ref_f = state[S_REF_F]
     ref_a = state[S_REF_A]
     slips = state[S_SLIPS]
+    fast_m2 = state[S_FAST_M2]
 
     want_ref = ref.shape[0] > 0
     want_freq = freq.shape[0] > 0
@@ -196,6 +202,15 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                 if p > cap:
                     y *= np.sqrt(cap / p)
                     p = cap
+                # a lasting level step of 20 dB or more (fade, gain change): rescale
+                # the moments at once, keeping the SNR they estimate
+                fast_m2 += FAST_ALPHA * (p - fast_m2)
+                level = fast_m2 * mw / m2
+                if level > LEVEL_STEP or level < 1.0 / LEVEL_STEP:
+                    m2 *= level
+                    m4 *= level * level
+            else:
+                fast_m2 = p
             # M2M4 moments; detector on the power-normalised sample
             m2 += alpha * (p - m2)
             m4 += alpha * (p * p - m4)
@@ -286,4 +301,5 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_REF_F] = ref_f
     state[S_REF_A] = ref_a
     state[S_SLIPS] = slips
+    state[S_FAST_M2] = fast_m2
     return n_slips

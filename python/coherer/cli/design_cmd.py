@@ -178,7 +178,10 @@ def warnings_for(d, r):
     rate = r.get("doppler_rate_hz_per_s")
     if rate:
         limit = r["max_doppler_rate_hz_per_s"]
-        if abs(rate) > limit:
+        if d.loop_order == 1:
+            out.append(f"Doppler rate {abs(rate):g} Hz/s: a first-order loop cannot track a frequency ramp "
+                       "(its phase error grows without bound): use loop order 2 or 3")
+        elif abs(rate) > limit:
             out.append(f"Doppler rate {abs(rate):g} Hz/s is beyond what this loop tracks ({limit:.4g} Hz/s keeps "
                        "M x ramp error below pi/2): widen the loop or use loop order 3")
     offset = r.get("offset_hz")
@@ -256,11 +259,12 @@ def format_text(r):
         row(f"  phase-error RMS (linear theory)      {_rad(r['phase_error_rms_rad'])}")
         row(f"  phase-error RMS (Tikhonov model)     {_rad(r['phase_error_rms_tikhonov_rad'])}")
         note = " (Viterbi, first order)" if order == 1 else " (Viterbi, -1 dB empirical correction)"
-        row(f"  mean time between cycle slips        {_fmt_time(r['mean_time_between_slips_s'])}{note}")
+        slip = min(r["mean_time_between_slips_s"], 1e300)      # inf: beyond float range, not "never slips"
+        row(f"  mean time between cycle slips        {_fmt_time(slip)}{note}")
     if "offset_hz" in r:
         row(f"for a carrier offset of {r['offset_hz']:g} Hz:")
-        row(f"  pull-in time (Gardner)               {_fmt_time(r['pull_in_time_s'])}"
-            f"  [Rice's rule: {_fmt_time(r['pull_in_time_rice_s'])}]")
+        rice = f"  [Rice's rule: {_fmt_time(r['pull_in_time_rice_s'])}]" if order > 1 else ""
+        row(f"  pull-in time (Gardner)               {_fmt_time(r['pull_in_time_s'])}{rice}")
         row(f"  time to lock (+ 1.3/B_L settling)    {_fmt_time(r['lock_time_s'])}")
         verdict = "needed" if r["acquisition_needed"] else "not needed"
         row(f"  frequency acquisition aid            {verdict}: {r['acquisition_reason']}")
@@ -269,7 +273,10 @@ def format_text(r):
     if "doppler_rate_hz_per_s" in r:
         row(f"for a Doppler rate of {r['doppler_rate_hz_per_s']:g} Hz/s:")
         row(f"  steady-state phase error             {_rad(abs(r['ramp_phase_error_rad']))}")
-        row(f"  largest trackable rate               {r['max_doppler_rate_hz_per_s']:.4g} Hz/s")
+        limit = r["max_doppler_rate_hz_per_s"]
+        limit_text = {math.inf: "unlimited (a 3rd-order loop has no ramp error)",
+                      0.0: "none (a 1st-order loop cannot track a ramp)"}.get(limit, f"{limit:.4g} Hz/s")
+        row(f"  largest trackable rate               {limit_text}")
         if "total_phase_error_rms_rad" in r:
             row(f"  total phase error (jitter + ramp)    {_rad(r['total_phase_error_rms_rad'])} rms")
     for w in r["warnings"]:
@@ -338,7 +345,7 @@ def write_plot(path, d, steps, r):
     ax.set(title=f"Frequency step: phase error (linear loop), peak "
                  f"{math.degrees(r['freq_step_peak_error_rad_per_hz'] * (offset or 1.0)):.3g} deg",
            xlabel=f"time ({unit})", ylabel=ylabel)
-    ax.legend(loc="upper right")
+    ax.legend(loc="best")
 
     ax = axes[1, 1]
     freqs = np.geomspace(r["actual_noise_bw_hz"] / 100.0, d.sample_rate / 2.0, 1000)

@@ -105,24 +105,27 @@ class _collector(gr.sync_block):
     def _consume(self, ins, n):
         start = self.nitems_read(0)
         freq = ins[2]
-        bounds = []                   # relative offsets where the lock state changes
+        # tags in stream order; at one offset a lock change goes before the status
+        order = {metadata.CARRIER_LOCK: 0, metadata.CYCLE_SLIP: 1, metadata.CARRIER_STATUS: 2}
+        tags = []
         for tag in self.get_tags_in_window(0, 0, n):
-            rel = tag.offset - start
             key = pmt.symbol_to_string(tag.key)
+            if key in order:
+                tags.append((tag.offset, order[key], key, tag.value))
+        tags.sort(key=lambda t: (t[0], t[1]))
+        pos = 0                       # frequency sums are split at the lock-state changes
+        for offset, _, key, value in tags:
+            rel = offset - start
             if key == metadata.CARRIER_LOCK:
-                bounds.append((rel, bool(pmt.to_bool(tag.value))))
+                self._accumulate(freq, pos, rel)
+                pos = rel
+                self._on_lock_change(offset, bool(pmt.to_bool(value)), float(freq[rel]))
             elif key == metadata.CYCLE_SLIP:
-                self.events.append({"event": "cycle_slip", "sample": int(tag.offset),
-                                    "time_s": tag.offset / self._fs, "freq_hz": float(freq[rel]),
-                                    "slips": int(pmt.to_long(tag.value))})
-            elif key == metadata.CARRIER_STATUS:
-                self._on_status(tag.value)
-        # per-interval frequency sums, split at the lock-state changes in this call
-        pos = 0
-        for rel, locked in sorted(bounds, key=lambda b: b[0]):
-            self._accumulate(freq, pos, rel)
-            pos = rel
-            self._on_lock_change(start + rel, locked, float(freq[rel]))
+                self.events.append({"event": "cycle_slip", "sample": int(offset),
+                                    "time_s": offset / self._fs, "freq_hz": float(freq[rel]),
+                                    "slips": int(pmt.to_long(value))})
+            else:
+                self._on_status(value)
         self._accumulate(freq, pos, n)
         # decimated traces
         first = (-start) % self._trace_step

@@ -15,6 +15,7 @@ processing). A data file with no whole sample at all is bad input.
 
 import json
 import os
+import tarfile
 import tempfile
 import warnings
 from dataclasses import dataclass, field
@@ -183,60 +184,99 @@ def _sigmf_error(where, exc):
     return RecordingError(f"{where}: {msg}")
 
 
-def open_sigmf(path):
-    """A SigMF recording given its .sigmf-meta, .sigmf-data or .sigmf (archive) path.
-
-    Metadata is checked for the fields this tool needs, then read and validated by
-    the ``sigmf`` library, which also resolves the data file (or the data member of an
-    uncompressed archive). The data checksum is not recomputed (files can be large).
-    """
+def _validate_meta(where, meta):
+    """Validate metadata (dict) with the ``sigmf`` library; RecordingError if invalid."""
     import jsonschema
     from sigmf import error as sigmf_error
     from sigmf import sigmffile
 
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            sigmffile.SigMFFile(metadata=meta).validate()
+        except jsonschema.ValidationError as exc:
+            raise RecordingError(f"{where}: invalid SigMF metadata: {exc.message}") from None
+        except (sigmf_error.SigMFError, ValueError, KeyError, TypeError) as exc:
+            raise _sigmf_error(where, exc) from None
+    return [str(w.message) for w in caught]
+
+
+def _archive_members(path):
+    """(metadata dict, byte offset of the data member, its size) of an uncompressed
+    SigMF archive (a tar holding NAME/NAME.sigmf-meta and NAME/NAME.sigmf-data)."""
+    try:
+        with tarfile.open(path, "r:") as tar:
+            files = [m for m in tar.getmembers() if m.isfile()]
+            metas = [m for m in files if m.name.endswith(".sigmf-meta")]
+            datas = [m for m in files if m.name.endswith(".sigmf-data")]
+            if len(metas) != 1 or len(datas) != 1:
+                raise RecordingError(f"{path}: a SigMF archive must hold one .sigmf-meta and one "
+                                     f".sigmf-data file (found {len(metas)} and {len(datas)})")
+            raw = tar.extractfile(metas[0]).read()
+            data = datas[0]
+    except tarfile.ReadError as exc:
+        msg = "compressed archives are not supported, extract it first" if "compress" in str(exc) \
+            else f"not a SigMF archive ({exc})"
+        raise RecordingError(f"{path}: {msg}") from None
+    except OSError as exc:
+        raise RecordingError(f"{path}: cannot read ({exc.strerror or exc})") from None
+    try:
+        meta = json.loads(raw)
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise RecordingError(f"{path}: its metadata is not valid JSON ({exc})") from None
+    if not isinstance(meta, dict) or not isinstance(meta.get("global"), dict):
+        raise RecordingError(f"{path}: not SigMF metadata (no \"global\" object)")
+    return meta, data.offset_data, data.size
+
+
+def open_sigmf(path):
+    """A SigMF recording given its .sigmf-meta, .sigmf-data or .sigmf (archive) path.
+
+    The metadata is checked for the fields this tool needs and validated by the
+    ``sigmf`` library, which also resolves the data file of a metadata/data pair.
+    The samples are not read here, and the data checksum is not recomputed (files
+    can be large). Archives must be uncompressed tar files (the ``.sigmf`` format);
+    their data member is streamed in place.
+    """
+    from sigmf import error as sigmf_error
+    from sigmf import sigmffile
+
     path = Path(path)
-    name = str(path).lower()
-    is_archive = name.endswith(".sigmf")
-    if not is_archive:
+    if str(path).lower().endswith(".sigmf"):
+        if not path.is_file():
+            raise RecordingError(f"{path}: no such file")
+        meta, offset, nbytes = _archive_members(path)
+        fmt, rate = _check_global(path, meta)
+        notes = _validate_meta(path, meta)
+        data_path, meta_path, kind = path, None, "archive"
+    else:
         meta_path = sigmffile.get_sigmf_filenames(path)["meta_fn"]
         if not meta_path.is_file():
             raise RecordingError(f"{meta_path}: no such file")
         meta = _read_meta_json(meta_path)
         fmt, rate = _check_global(meta_path, meta)
-    elif not path.is_file():
-        raise RecordingError(f"{path}: no such file")
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
+        notes = _validate_meta(meta_path, meta)
         try:
-            sf = sigmffile.fromfile(path, skip_checksum=True)
-            if not is_archive:
-                sf.validate()
-        except jsonschema.ValidationError as exc:
-            raise RecordingError(f"{path}: invalid SigMF metadata: {exc.message}") from None
-        except (sigmf_error.SigMFError, OSError, ValueError, KeyError, TypeError) as exc:
-            raise _sigmf_error(path, exc) from None
-    notes = [str(w.message) for w in caught
-             if "integer number of samples" not in str(w.message)]   # reported below instead
-    if is_archive:
-        meta = sf._metadata
-        fmt, rate = _check_global(path, meta)
-        data_path = Path(sf.data_file)
-        nbytes = sf.data_size_bytes
-        kind = "archive"
-        meta_path = None
-    else:
-        if sf.data_file is None:
-            raise RecordingError(f"{path}: data file {sigmffile.get_sigmf_filenames(path)['data_fn']} not found")
-        data_path = Path(sf.data_file)
-        header = int(getattr(sf, "data_offset", 0) or 0)
-        trailing = int(meta["global"].get("core:trailing_bytes", 0))
-        nbytes = data_path.stat().st_size - header - trailing
+            data_path = sigmffile.get_dataset_filename_from_metadata(meta_path, meta)
+        except sigmf_error.SigMFError as exc:
+            raise _sigmf_error(meta_path, exc) from None
+        if data_path is None:
+            raise RecordingError(f"{meta_path}: data file "
+                                 f"{sigmffile.get_sigmf_filenames(path)['data_fn']} not found")
+        data_path = Path(data_path)
+        offset = 0
+        nbytes = data_path.stat().st_size
         kind = "sigmf"
+    # non-conforming datasets: header bytes before the samples, trailing bytes after
+    header = sum(int(c.get("core:header_bytes", 0)) for c in meta.get("captures") or [])
+    trailing = int(meta["global"].get("core:trailing_bytes", 0))
+    if header + trailing > nbytes:
+        raise RecordingError(f"{data_path}: shorter than its header and trailing bytes")
     if not os.access(data_path, os.R_OK):
         raise RecordingError(f"{data_path}: not readable")
-    count, more = _whole_samples(data_path, nbytes, fmt)
-    return Recording(data_path, int(sf.data_offset or 0), count, fmt, rate,
-                     _first_capture_frequency(meta), meta_path, kind, notes + more)
+    count, more = _whole_samples(data_path, nbytes - header - trailing, fmt)
+    return Recording(data_path, offset + header, count, fmt, rate, _first_capture_frequency(meta),
+                     meta_path, kind, notes + more)
 
 
 def open_recording(path, sample_rate=None, fmt_name=None):
@@ -324,10 +364,6 @@ def merge_annotations(meta_path, annotations):
     result is validated by the ``sigmf`` library before it replaces the file
     atomically; on any failure the original file is untouched.
     """
-    import jsonschema
-    from sigmf import error as sigmf_error
-    from sigmf import sigmffile
-
     meta_path = Path(meta_path)
     meta = _read_meta_json(meta_path)
     old = [a for a in meta.get("annotations", []) if a.get("core:generator") != GENERATOR]
@@ -336,13 +372,6 @@ def merge_annotations(meta_path, annotations):
     exts = meta["global"].setdefault("core:extensions", [])
     if not any(e.get("name") == EXTENSION["name"] for e in exts):
         exts.append(dict(EXTENSION))
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            sigmffile.SigMFFile(metadata=meta).validate()
-    except jsonschema.ValidationError as exc:
-        raise RecordingError(f"{meta_path}: annotated metadata would be invalid: {exc.message}") from None
-    except sigmf_error.SigMFError as exc:
-        raise _sigmf_error(meta_path, exc) from None
+    _validate_meta(f"{meta_path} (with the new annotations)", meta)
     _atomic_write_json(meta_path, meta)
     return meta

@@ -1,0 +1,426 @@
+# SPDX-License-Identifier: GPL-3.0-or-later
+"""``coherer run`` end to end, run in a subprocess as a user would (issue 6 items 1 and 5).
+
+Recordings are generated here with numpy (seeded) and written byte by byte in
+each SigMF format, with metadata written as plain JSON, so the checks do not
+lean on the product's own writer or converters.
+"""
+
+import io
+import json
+import os
+import signal
+import tarfile
+import time
+
+import numpy as np
+import pytest
+
+from clirunner import coherer, one_error_line, popen, python
+
+FS = 8000.0              # samples/s (one sample per symbol)
+ON_S, OFF_S, END_S = 1.0, 4.5, 6.0
+OFFSET_HZ = 137.0
+ESN0_DB = 10.0
+AMP = 0.25               # signal amplitude, fraction of full scale
+CENTER_HZ = 145.9e6
+NOISE_BW = 20.0
+WINDOW = 1024
+WINDOW_S = WINDOW / FS
+LOOP = ["--power", "2", "--noise-bw", NOISE_BW, "--window", WINDOW]
+
+
+def bpsk(seed, on_s=ON_S, off_s=OFF_S, freq_step_at=None, freq_step_hz=0.0):
+    """BPSK, one sample per symbol, present on [on_s, off_s), in complex AWGN at ESN0_DB."""
+    rng = np.random.default_rng(seed)
+    n = int(END_S * FS)
+    t = np.arange(n) / FS
+    phase = 2 * np.pi * OFFSET_HZ * t + 0.3
+    if freq_step_at is not None:
+        phase += 2 * np.pi * freq_step_hz * np.maximum(t - freq_step_at, 0.0)
+    on = (t >= on_s) & (t < off_s)
+    symbols = 2.0 * rng.integers(0, 2, n) - 1.0
+    noise_var = AMP ** 2 / 10 ** (ESN0_DB / 10)
+    noise = rng.normal(scale=np.sqrt(noise_var / 2), size=(n, 2)) @ np.array([1, 1j])
+    return on * AMP * symbols * np.exp(1j * phase) + noise
+
+
+def encode(x, fmt):
+    """Interleaved I/Q bytes in a SigMF datatype (ci16 full scale 32768, ci8 128,
+    cu8 offset binary 127.5 +- 127.5), written independently of the product."""
+    iq = np.empty(2 * len(x))
+    iq[0::2], iq[1::2] = x.real, x.imag
+    if fmt == "cf32_le":
+        return iq.astype("<f4").tobytes()
+    if fmt == "ci16_le":
+        return np.clip(np.rint(iq * 32768), -32768, 32767).astype("<i2").tobytes()
+    if fmt == "ci8":
+        return np.clip(np.rint(iq * 128), -128, 127).astype("i1").tobytes()
+    if fmt == "cu8":
+        return np.clip(np.rint(iq * 127.5 + 127.5), 0, 255).astype("u1").tobytes()
+    raise ValueError(fmt)
+
+
+def write_sigmf(folder, name, data, fmt="cf32_le", global_extra=None, meta=None):
+    """A .sigmf-meta / .sigmf-data pair; returns the meta path."""
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / f"{name}.sigmf-data").write_bytes(data)
+    if meta is None:
+        meta = {"global": {"core:datatype": fmt, "core:sample_rate": FS, "core:version": "1.2.0",
+                           **(global_extra or {})},
+                "captures": [{"core:sample_start": 0, "core:frequency": CENTER_HZ}],
+                "annotations": []}
+    path = folder / f"{name}.sigmf-meta"
+    path.write_text(meta if isinstance(meta, str) else json.dumps(meta, indent=2))
+    return path
+
+
+def lock_intervals(events):
+    """[(lock_time, unlock_time or None)] from an events list."""
+    out = []
+    for e in events:
+        if e["event"] == "lock":
+            out.append([e["time_s"], None])
+        elif e["event"] == "unlock" and out and out[-1][1] is None:
+            out[-1][1] = e["time_s"]
+    return [tuple(iv) for iv in out]
+
+
+def validate_sigmf(meta_path):
+    """Validate with the sigmf library in the CLI's interpreter (it has the library)."""
+    return python("import sys, sigmf\n"
+                  "sigmf.sigmffile.fromfile(sys.argv[1], skip_checksum=True).validate()\n"
+                  "print('valid')", meta_path)
+
+
+# --- each format finds the lock interval, the offset and Es/N0 ---------------------------------
+
+@pytest.mark.parametrize("fmt", ["cf32_le", "ci16_le", "ci8", "cu8"])
+def test_run_each_format_finds_interval_offset_and_esn0(tmp_path, fmt):
+    meta = write_sigmf(tmp_path, "pass", encode(bpsk(seed=11), fmt), fmt)
+    events_path = tmp_path / "events.json"
+    proc = coherer("run", meta, *LOOP, "--events", events_path, "--annotate")
+    assert proc.returncode == 0, proc.stderr
+
+    events = json.loads(events_path.read_text())
+    for e in events:
+        assert e["event"] in ("lock", "unlock", "cycle_slip")
+        assert isinstance(e["sample"], int)
+        assert e["time_s"] == pytest.approx(e["sample"] / FS, rel=1e-12)
+    # Tolerance: lock and unlock are declared on the first sample of the detector window
+    # that decided them. The window straddling an edge may already go either way, so
+    # each edge may be reported up to one window early. Late: acquisition needs a few
+    # FFT blocks (4/(B_L T) samples each, 0.2 s here) plus a window; loss of signal is
+    # seen within the window after the edge.
+    intervals = lock_intervals(events)
+    assert len(intervals) == 1, events
+    lock_t, unlock_t = intervals[0]
+    assert ON_S - WINDOW_S <= lock_t <= ON_S + 1.0
+    assert unlock_t is not None and OFF_S - WINDOW_S <= unlock_t <= OFF_S + 2 * WINDOW_S
+    assert not [e for e in events if e["event"] == "cycle_slip"]   # steady carrier: no slip
+    lock = [e for e in events if e["event"] == "lock"][0]
+    assert {"freq_hz", "metric", "esn0_db", "carrier_hz"} <= set(lock)
+
+    # the annotation of the locked interval carries the mean offset and Es/N0
+    notes = json.loads(meta.read_text())["annotations"]
+    locked = [a for a in notes if a["core:label"] == "carrier locked"]
+    assert len(locked) == 1
+    a = locked[0]
+    assert a["core:sample_start"] == round(lock_t * FS)
+    assert a["core:sample_start"] + a["core:sample_count"] == round(unlock_t * FS)
+    # Offset within 1 Hz (issue 6 acceptance): the truth is a constant OFFSET_HZ.
+    assert abs(a["coherer:freq_hz"] - OFFSET_HZ) <= 1.0
+    assert abs(a["coherer:carrier_hz"] - (CENTER_HZ + OFFSET_HZ)) <= 1.0
+    # Es/N0 within 0.5 dB (issue 6 acceptance). M2M4 over N = 1024 has a bias of about
+    # +0.4 % and a spread of 5 % per window at 10 dB (Pauluzzi & Beaulieu 2000; REFERENCES 8
+    # table, N = 1000); averaged over ~27 windows that is < 0.05 dB, so 0.5 dB also covers the
+    # partly-signal window at the interval's start.
+    assert abs(a["coherer:esn0_db"] - ESN0_DB) <= 0.5
+
+    # stdout is the events table and the summary line, nothing from GNU Radio's log
+    lines = proc.stdout.splitlines()
+    assert lines[0].split()[:3] == ["time", "(s)", "sample"]
+    assert not any(":info:" in ln or ":debug:" in ln or ":warning:" in ln for ln in lines)
+    assert any(ln.startswith("locked ") for ln in lines)
+
+
+def test_raw_file_with_rate_and_format(tmp_path):
+    raw = tmp_path / "capture.cu8"
+    raw.write_bytes(encode(bpsk(seed=12), "cu8"))
+    events_path = tmp_path / "ev.json"
+    proc = coherer("run", raw, "--sample-rate", FS, "--format", "cu8", *LOOP, "--events", events_path)
+    assert proc.returncode == 0, proc.stderr
+    events = json.loads(events_path.read_text())
+    (lock_t, unlock_t), = lock_intervals(events)
+    assert ON_S - WINDOW_S <= lock_t <= ON_S + 1.0
+    assert OFF_S - WINDOW_S <= unlock_t <= OFF_S + 2 * WINDOW_S
+    assert "carrier_hz" not in events[0]          # no capture frequency for a raw file
+
+
+def test_sigmf_archive(tmp_path):
+    data = encode(bpsk(seed=13), "ci16_le")
+    meta = {"global": {"core:datatype": "ci16_le", "core:sample_rate": FS, "core:version": "1.2.0"},
+            "captures": [{"core:sample_start": 0, "core:frequency": CENTER_HZ}], "annotations": []}
+    archive = tmp_path / "pass.sigmf"
+    with tarfile.open(archive, "w") as tar:    # the SigMF archive layout: NAME/NAME.sigmf-*
+        for name, blob in (("pass/pass.sigmf-meta", json.dumps(meta).encode()),
+                           ("pass/pass.sigmf-data", data)):
+            info = tarfile.TarInfo(name)
+            info.size = len(blob)
+            tar.addfile(info, io.BytesIO(blob))
+    events_path = tmp_path / "ev.json"
+    proc = coherer("run", archive, *LOOP, "--events", events_path)
+    assert proc.returncode == 0, proc.stderr
+    (lock_t, unlock_t), = lock_intervals(json.loads(events_path.read_text()))
+    assert ON_S - WINDOW_S <= lock_t <= ON_S + 1.0
+    assert OFF_S - WINDOW_S <= unlock_t <= OFF_S + 2 * WINDOW_S
+    # an archive is not rewritten
+    proc = coherer("run", archive, *LOOP, "--annotate")
+    assert proc.returncode == 2
+    assert "--annotate" in one_error_line(proc)
+
+
+def test_forced_slip_is_reported(tmp_path):
+    """A +15 Hz carrier frequency step at 3 s, far beyond the pull-out range of a
+    B_L = 20 Hz squaring loop (Gardner's pull-out 1.8 wn (zeta + 1) is about 116 rad/s in the
+    doubled-phase domain, i.e. 9 Hz of carrier; REFERENCES 2.2, from memory), forces the loop
+    to slip while it pulls in. The carrier runs ahead, so the NCO falls behind: the net
+    slip count is negative (the loop's sign convention: +1 = NCO advanced by 2 pi/M)."""
+    x = bpsk(seed=14, on_s=ON_S, off_s=END_S, freq_step_at=3.0, freq_step_hz=15.0)
+    meta = write_sigmf(tmp_path, "step", encode(x, "cf32_le"))
+    events_path = tmp_path / "ev.json"
+    proc = coherer("run", meta, *LOOP, "--events", events_path, "--annotate")
+    assert proc.returncode == 0, proc.stderr
+    events = json.loads(events_path.read_text())
+    slips = [e for e in events if e["event"] == "cycle_slip"]
+    assert slips, events
+    assert all(3.0 <= e["time_s"] <= 5.0 for e in slips), slips
+    assert sum(e["slips"] for e in slips) < 0
+    notes = json.loads(meta.read_text())["annotations"]
+    assert len([a for a in notes if a["core:label"].startswith("cycle slip")]) == len(slips)
+
+
+# --- report -------------------------------------------------------------------------------------
+
+def test_report_plots_and_summary(tmp_path):
+    meta = write_sigmf(tmp_path, "pass", encode(bpsk(seed=15), "cf32_le"))
+    report = tmp_path / "report"
+    proc = coherer("run", meta, *LOOP, "--report", report)
+    assert proc.returncode == 0, proc.stderr
+    for png in ("timeline.png", "constellation.png"):
+        head = (report / png).read_bytes()[:8]
+        assert head == b"\x89PNG\r\n\x1a\n"                 # PNG signature (PNG spec, 5.2)
+    s = json.loads((report / "summary.json").read_text())
+    assert s["recording"]["sample_rate"] == FS
+    assert s["recording"]["center_freq_hz"] == CENTER_HZ
+    assert s["settings"]["power"] == 2 and s["settings"]["noise_bw_hz"] == NOISE_BW
+    iv, = s["result"]["intervals"]
+    assert abs(iv["freq_hz"] - OFFSET_HZ) <= 1.0
+    # predicted jitter of the interval: B_L T V_M / M^2 with V_2 = 4 s2 + 2 s2^2, s2 = 1/(Es/N0)
+    # (REFERENCES 4, derived; checked there by simulation), at the interval's measured Es/N0
+    s2 = 10 ** (-iv["esn0_db"] / 10)
+    var = (s["loop"]["actual_bt"]) * (4 * s2 + 2 * s2 ** 2) / 4
+    assert iv["phase_error_rms_deg_predicted"] == pytest.approx(np.degrees(np.sqrt(var)), rel=1e-9)
+    assert [e["event"] for e in s["events"]] == ["lock", "unlock"]
+
+
+# --- annotate -----------------------------------------------------------------------------------
+
+RICH_META = {
+    "global": {"core:datatype": "ci16_le", "core:sample_rate": FS, "core:version": "1.2.0",
+               "core:author": "test bench", "core:description": "pass with a beacon",
+               "core:hw": "bench receiver", "core:recorder": "bench script"},
+    "captures": [{"core:sample_start": 0, "core:frequency": CENTER_HZ,
+                  "core:datetime": "2026-05-04T10:00:00Z"}],
+    "annotations": [{"core:sample_start": 100, "core:sample_count": 50, "core:label": "beacon",
+                     "core:comment": "kept as it is"}],
+}
+
+
+def test_annotate_keeps_everything_and_is_valid(tmp_path):
+    meta = write_sigmf(tmp_path, "rich", encode(bpsk(seed=16), "ci16_le"), meta=json.dumps(RICH_META))
+    proc = coherer("run", meta, *LOOP, "--annotate")
+    assert proc.returncode == 0, proc.stderr
+    after = json.loads(meta.read_text())
+    for k, v in RICH_META["global"].items():
+        assert after["global"][k] == v
+    assert after["captures"] == RICH_META["captures"]
+    assert RICH_META["annotations"][0] in after["annotations"]
+    new = [a for a in after["annotations"] if a.get("core:generator") == "gr-coherer"]
+    assert [a["core:label"] for a in new] == ["carrier locked"]
+    assert {"coherer:freq_hz", "coherer:esn0_db"} <= set(new[0])
+    assert any(e["name"] == "coherer" for e in after["global"]["core:extensions"])
+    starts = [a["core:sample_start"] for a in after["annotations"]]
+    assert starts == sorted(starts)                       # SigMF: annotations in start order
+    check = validate_sigmf(meta)
+    assert check.returncode == 0 and "valid" in check.stdout, check.stderr
+    assert not [p for p in tmp_path.iterdir() if p.name.endswith(".tmp")]
+
+    # a second run replaces this tool's annotations instead of piling them up
+    proc = coherer("run", meta, *LOOP, "--annotate")
+    assert proc.returncode == 0, proc.stderr
+    again = json.loads(meta.read_text())
+    assert len(again["annotations"]) == len(after["annotations"])
+
+
+def test_interrupted_run_leaves_metadata_untouched(tmp_path):
+    """SIGINT while the flowgraph runs: exit 130, metadata byte for byte as before, no
+    temporary file left. The recording is long enough (noise, 8 M samples) that the run
+    is still going when the signal arrives; the exit status proves it was interrupted."""
+    rng = np.random.default_rng(17)
+    data = rng.integers(0, 256, 16_000_000, dtype=np.uint8).tobytes()
+    meta = write_sigmf(tmp_path, "long", data, "cu8", meta=json.dumps(
+        dict(RICH_META, **{"global": dict(RICH_META["global"], **{"core:datatype": "cu8"})})))
+    before = meta.read_bytes()
+    proc = popen("run", meta, *LOOP, "--annotate")
+    time.sleep(4.0)
+    proc.send_signal(signal.SIGINT)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err
+    assert meta.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["long.sigmf-data", "long.sigmf-meta"]
+
+
+def test_merge_failure_leaves_metadata_untouched(tmp_path, monkeypatch):
+    """The write itself fails (disk full, say) after the temporary file was opened:
+    the original file is untouched and the temporary file removed."""
+    pytest.importorskip("sigmf")
+    from gnuradio.coherer import recording
+
+    meta = write_sigmf(tmp_path, "rich", b"\0" * 400, meta=json.dumps(RICH_META))
+    before = meta.read_bytes()
+
+    def broken_dump(*args, **kwargs):
+        raise OSError(28, "No space left on device")
+    monkeypatch.setattr(recording.json, "dump", broken_dump)
+    with pytest.raises(OSError):
+        recording.merge_annotations(meta, [{"core:sample_start": 10, "core:sample_count": 5,
+                                            "core:label": "x"}])
+    assert meta.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["rich.sigmf-data", "rich.sigmf-meta"]
+
+
+# --- malformed input: exit 2 and one line ------------------------------------------------------
+
+def _meta(**glob):
+    g = {"core:datatype": "cf32_le", "core:sample_rate": FS, "core:version": "1.2.0"}
+    g.update(glob)
+    return json.dumps({"global": {k: v for k, v in g.items() if v is not None},
+                       "captures": [{"core:sample_start": 0}], "annotations": []})
+
+
+GOOD = np.zeros(4096, np.complex64).tobytes()
+
+MALFORMED_SIGMF = {
+    # case: (data bytes, metadata text, words the message must contain)
+    "invalid JSON": (GOOD, '{"global": {"core:datatype": "cf32_le",', "not valid JSON"),
+    "not UTF-8": (GOOD, b"\xff\xfe\x00garbage".decode("latin-1"), "not valid JSON"),
+    "not an object": (GOOD, "[1, 2, 3]", "not SigMF"),
+    "missing datatype": (GOOD, _meta(**{"core:datatype": None}), "core:datatype"),
+    "missing sample rate": (GOOD, _meta(**{"core:sample_rate": None}), "core:sample_rate"),
+    "unsupported datatype": (GOOD, _meta(**{"core:datatype": "ri16_le"}), "unsupported"),
+    "zero sample rate": (GOOD, _meta(**{"core:sample_rate": 0}), "core:sample_rate"),
+    "negative sample rate": (GOOD, _meta(**{"core:sample_rate": -8000.0}), "core:sample_rate"),
+    "no whole sample": (b"\0" * 7, _meta(), "no whole"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(MALFORMED_SIGMF))
+def test_malformed_sigmf_is_exit_2_one_line(tmp_path, case):
+    data, meta_text, words = MALFORMED_SIGMF[case]
+    (tmp_path / "bad.sigmf-data").write_bytes(data)
+    meta = tmp_path / "bad.sigmf-meta"
+    meta.write_text(meta_text, encoding="latin-1" if case == "not UTF-8" else "utf-8")
+    proc = coherer("run", meta, *LOOP)
+    assert proc.returncode == 2
+    assert words in one_error_line(proc)
+
+
+def test_missing_files_are_exit_2(tmp_path):
+    proc = coherer("run", tmp_path / "nothing.sigmf-meta", *LOOP)
+    assert proc.returncode == 2 and "no such file" in one_error_line(proc)
+    (tmp_path / "lonely.sigmf-meta").write_text(_meta())
+    proc = coherer("run", tmp_path / "lonely.sigmf-meta", *LOOP)
+    assert proc.returncode == 2 and "not found" in one_error_line(proc)
+    proc = coherer("run", tmp_path / "nothing.cu8", "--sample-rate", FS, "--format", "cu8", *LOOP)
+    assert proc.returncode == 2 and "no such file" in one_error_line(proc)
+
+
+def test_partial_sample_policy_whole_samples_with_warning(tmp_path):
+    """Chosen policy: a data file that ends inside a sample (a cut capture) is processed up
+    to its last whole sample, with one warning line on stderr, and exits 0."""
+    x = bpsk(seed=18)
+    meta = write_sigmf(tmp_path, "cut", encode(x, "ci16_le") + b"\x01\x02\x03", "ci16_le")
+    events_path = tmp_path / "ev.json"
+    proc = coherer("run", meta, *LOOP, "--events", events_path)
+    assert proc.returncode == 0, proc.stderr
+    warnings = [ln for ln in proc.stderr.splitlines() if "warning" in ln]
+    assert len(warnings) == 1 and "last 3 byte(s)" in warnings[0]
+    (lock_t, _), = lock_intervals(json.loads(events_path.read_text()))
+    assert ON_S - WINDOW_S <= lock_t <= ON_S + 1.0
+
+
+OUT_OF_RANGE = {
+    "power 0": (["--power", "0"], "--power"),
+    "power 17": (["--power", "17"], "--power"),
+    "noise bw negative": (["--noise-bw", "-5"], "--noise-bw"),
+    "noise bw zero": (["--noise-bw", "0"], "--noise-bw"),
+    "noise bw above 0.1 fs": (["--noise-bw", "900"], "--noise-bw"),
+    "noise bw not a number": (["--noise-bw", "fast"], "--noise-bw"),
+    "damping zero": (["--damping", "0"], "--damping"),
+    "damping too large": (["--damping", "11"], "--damping"),
+    "loop order 4": (["--loop-order", "4"], "--loop-order"),
+    "window too short": (["--window", "8"], "--window"),
+    "window longer than the file": (["--window", "8192"], "--window"),
+    "freq guess beyond range": (["--freq-guess", "3000"], "--freq-guess"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(OUT_OF_RANGE))
+def test_options_out_of_range_are_exit_2(tmp_path, case):
+    extra, words = OUT_OF_RANGE[case]
+    meta = write_sigmf(tmp_path, "ok", GOOD)
+    args = dict(zip(LOOP[0::2], LOOP[1::2]))
+    args.update(dict(zip(extra[0::2], extra[1::2])))
+    proc = coherer("run", meta, *[v for kv in args.items() for v in kv])
+    assert proc.returncode == 2
+    assert words in one_error_line(proc)
+
+
+RAW_ARGS = {
+    "zero rate": (["--sample-rate", "0", "--format", "cu8"], "--sample-rate"),
+    "negative rate": (["--sample-rate", "-1e6", "--format", "cu8"], "--sample-rate"),
+    "unknown format": (["--sample-rate", "1e6", "--format", "cs12"], "--format"),
+    "rate without format": (["--sample-rate", "1e6"], "--format"),
+    "no rate or format": ([], "--sample-rate"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(RAW_ARGS))
+def test_raw_arguments_are_checked(tmp_path, case):
+    extra, words = RAW_ARGS[case]
+    raw = tmp_path / "capture.bin"
+    raw.write_bytes(b"\x80" * 4096)
+    proc = coherer("run", raw, *LOOP, *extra)
+    assert proc.returncode == 2
+    assert words in one_error_line(proc)
+
+
+def test_format_options_rejected_for_sigmf_and_annotate_for_raw(tmp_path):
+    meta = write_sigmf(tmp_path, "ok", GOOD)
+    proc = coherer("run", meta, *LOOP, "--sample-rate", FS, "--format", "cf32_le")
+    assert proc.returncode == 2 and "raw files" in one_error_line(proc)
+    raw = tmp_path / "capture.cf32"
+    raw.write_bytes(GOOD)
+    proc = coherer("run", raw, *LOOP, "--sample-rate", FS, "--format", "cf32_le", "--annotate")
+    assert proc.returncode == 2 and "--annotate" in one_error_line(proc)
+    proc = coherer("run", meta, *LOOP, "--events", tmp_path / "no" / "such" / "dir" / "e.json")
+    assert proc.returncode == 2 and "--events" in one_error_line(proc)
+
+
+def test_help_lists_units():
+    proc = coherer("run", "--help")
+    assert proc.returncode == 0
+    for words in ("Hz", "samples/s", "--events", "--report", "--annotate", "cu8", "Exit status"):
+        assert words in proc.stdout

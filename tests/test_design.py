@@ -603,7 +603,7 @@ def test_step_responses_equal_lfilter_of_closed_loop(order):
     # reference: scipy.signal.lfilter on the closed-loop H(z) (REFERENCES 1.2 form), where it is well conditioned
     fs = 1000.0
     d = design.design_loop(fs, 4, 5.0, 0.707, order)
-    steps = design.step_responses(d, n_samples=5000)
+    steps = design.step_responses(d, n_samples=5000, max_points=5000)     # every sample
     b, a = design.closed_loop(d.g_gains)
     n = np.arange(5000)
     # the direct form resolves the loop only to ~eps / a(1), a(1) = g K_d (the last gain): 100x that as tolerance
@@ -611,7 +611,9 @@ def test_step_responses_equal_lfilter_of_closed_loop(order):
     assert np.allclose(steps.phase_step, signal.lfilter(b, a, np.ones(5000)), rtol=0, atol=tol)
     ramp = 2 * np.pi * n / fs                                   # 1 Hz frequency step from sample 0
     assert np.allclose(steps.freq_step_error, ramp - signal.lfilter(b, a, ramp), rtol=0, atol=tol * ramp[-1])
-    nco = signal.lfilter(b, a, np.concatenate(([0.0], np.ones(4999))))
+    # NCO step v[n] = theta^[n+1] - theta^[n]: H applied to the input increments theta[n] - theta[n-1],
+    # which for theta[n] = f n are 0 at n = 0 and f from n = 1 on
+    nco = signal.lfilter(b, a, np.concatenate(([0.0], np.ones(5000))))[1:]
     assert np.allclose(steps.freq_step_nco, nco, rtol=0, atol=tol)
 
 
@@ -625,3 +627,14 @@ def test_narrow_third_order_responses_scale_with_bandwidth():
     assert narrow.phase_metrics.settling_time_s == pytest.approx(10 * wide.phase_metrics.settling_time_s, rel=2e-3)
     assert narrow.peak_error_rad_per_hz == pytest.approx(10 * wide.peak_error_rad_per_hz, rel=2e-3)  # ~ dw / wn
     assert abs(narrow.freq_step_error[-1]) < 1e-3 * narrow.peak_error_rad_per_hz
+
+
+def test_strided_responses_equal_every_sample_simulation():
+    # the strided grid (delta-form matrix powers) returns the same samples as a sample-by-sample run
+    d = design.design_loop(1e4, 2, 3.0, 0.5, 3)
+    full = design.step_responses(d, n_samples=40000, max_points=40000)
+    strided = design.step_responses(d, n_samples=40000, max_points=4000)
+    assert np.allclose(strided.time_s, full.time_s[::10], rtol=0, atol=1e-15)
+    assert np.allclose(strided.phase_step, full.phase_step[::10], rtol=0, atol=1e-12)
+    assert np.allclose(strided.freq_step_error, full.freq_step_error[::10], rtol=0, atol=1e-12)
+    assert strided.phase_metrics.settling_time_s == pytest.approx(full.phase_metrics.settling_time_s, abs=10 / 1e4)

@@ -37,7 +37,6 @@ from dataclasses import dataclass
 from math import comb, factorial, fsum, inf, pi, sqrt
 
 import numpy as np
-from numba import njit
 from scipy import optimize, signal, special
 
 #: Largest B_L * T (noise bandwidth over sample rate) the blocks accept.
@@ -552,15 +551,15 @@ def nonlinear_phase_error_variance(power, esn0, bt):
 SETTLING_BAND = 0.02
 #: Simulated length of the step responses, in time constants of the slowest closed-loop pole.
 RESPONSE_TIME_CONSTANTS = 20.0
-#: Longest simulated step response, samples.
-MAX_RESPONSE_SAMPLES = 1 << 22
+#: Most time points returned for a step response (the grid is strided for long windows).
+RESPONSE_POINTS = 4096
 
 
 def response_length(design):
     """Samples needed to watch the step responses settle (see :data:`RESPONSE_TIME_CONSTANTS`)."""
     r = float(np.max(np.abs(closed_loop_poles(design.g_gains))))
     tau = -1.0 / np.log(max(r, 1e-300))
-    return int(min(max(np.ceil(RESPONSE_TIME_CONSTANTS * tau), 256), MAX_RESPONSE_SAMPLES))
+    return int(max(np.ceil(RESPONSE_TIME_CONSTANTS * tau), 256))
 
 
 @dataclass(frozen=True)
@@ -618,48 +617,85 @@ class StepResponses:
     error_settling_time_s: float    #: |phi - final| within SETTLING_BAND of the peak from then on
 
 
-@njit(nogil=True, cache=True)
-def _linear_loop(phi0, freq, gk1, gk2, gk3, phi_out, step_out):
-    """Linearised loop in the kernel's accumulator form, driven by a constant input frequency.
+def _error_state_matrix(g_gains):
+    """``D`` with ``z[n+1] = (I + D) z[n] + [f, 0, 0]`` for the linearised loop in the kernel's order,
+    ``z = [phi, acc1, acc2]`` (truncated to the loop order), ``f`` the input phase increment per sample."""
+    gk1, gk2, gk3 = g_gains
+    order = 3 if gk3 else (2 if gk2 else 1)
+    g_all = gk1 + gk2 + gk3
+    d = np.array([[-g_all, -1.0, -1.0],
+                  [gk2 + gk3, 0.0, 1.0],
+                  [gk3, 0.0, 0.0]])
+    return d[:order, :order]
 
-    ``phi0``: phase error at sample 0 (rad); ``freq``: input phase increment per sample (rad).
-    Writes the phase error ``phi[n]`` and the NCO step ``v[n] = theta^[n+1] - theta^[n]``.
-    The accumulator form stays exact for very narrow loops, where the coefficients of
-    :func:`closed_loop` no longer resolve ``g K3`` (3rd order below B_L T ~ 1e-4).
+
+def _delta_power(d, n):
+    """``E`` with ``I + E = (I + D)^n``, by repeated squaring without forming ``I + D`` (keeps
+    full precision when the eigenvalues of ``I + D`` crowd around 1)."""
+    result = np.zeros_like(d)
+    base = d.copy()
+    while n:
+        if n & 1:
+            result = result + base + result @ base
+        base = 2.0 * base + base @ base
+        n >>= 1
+    return result
+
+
+def _free_response(d_step, w0, points):
+    """``w[m] = (I + D_s)^m w0`` for m = 0..points-1, as rows."""
+    out = np.empty((points, len(w0)))
+    w = np.array(w0, dtype=float)
+    for m in range(points):
+        out[m] = w
+        w = w + d_step @ w
+    return out
+
+
+def step_responses(design, n_samples=None, max_points=RESPONSE_POINTS):
+    """Phase-step and 1 Hz frequency-step responses of the linearised discrete loop with the
+    design's ``g_gains``, over ``n_samples`` samples (default :func:`response_length`).
+
+    Exact at the returned samples (every ``stride``-th one, at most ``max_points``): the loop is
+    advanced by ``(I + D)^stride`` in delta form, so very narrow loops cost no more than wide ones
+    and keep full precision (the polynomial form of :func:`closed_loop` stops resolving ``g K3``
+    below B_L T ~ 1e-4). Agrees with ``scipy.signal.lfilter`` on :func:`closed_loop` where that is
+    well conditioned.
     """
-    phi = phi0
-    acc1 = 0.0
-    acc2 = 0.0
-    for n in range(phi_out.shape[0]):
-        phi_out[n] = phi
-        acc2 += gk3 * phi
-        acc1 += gk2 * phi + acc2
-        v = gk1 * phi + acc1
-        step_out[n] = v
-        phi += freq - v
-
-
-def step_responses(design, n_samples=None):
-    """Simulate the linear phase-domain loop with the design's ``g_gains`` for a unit phase step
-    and a 1 Hz frequency step applied at sample 0 (same recursion as the kernel; agrees with
-    ``scipy.signal.lfilter`` on :func:`closed_loop` wherever that is well conditioned)."""
     n = response_length(design) if n_samples is None else int(n_samples)
+    stride = max(1, -(-n // max_points))
+    points = -(-n // stride)
     fs = design.sample_rate
-    gk1, gk2, gk3 = (float(g) for g in design.g_gains)
-    phase_error, unused = np.empty(n), np.empty(n)
-    _linear_loop(1.0, 0.0, gk1, gk2, gk3, phase_error, unused)
-    error, nco_step = np.empty(n), np.empty(n)
-    _linear_loop(0.0, 2.0 * pi / fs, gk1, gk2, gk3, error, nco_step)
-    phase = 1.0 - phase_error                              # theta^ per unit phase step
-    nco = np.concatenate(([0.0], nco_step[:-1])) * fs / (2.0 * pi)   # NCO frequency in use at sample n, Hz/Hz
+    d = _error_state_matrix(design.g_gains)
+    d_step = _delta_power(d, stride)
+    order = d.shape[0]
+    # phase step: z0 = [1, 0, 0] decays to 0
+    w0 = np.zeros(order)
+    w0[0] = 1.0
+    phase_state = _free_response(d_step, w0, points)
+    # 1 Hz frequency step f = 2 pi / fs rad/sample from z = 0; fixed point: phi = f / gK1 (order 1),
+    # else phi = 0 with acc1 = f
+    f = 2.0 * pi / fs
+    fixed = np.zeros(order)
+    if order == 1:
+        fixed[0] = f / design.g_gains[0]
+    else:
+        fixed[1] = f
+    freq_state = fixed + _free_response(d_step, -fixed, points)
+    g_all = sum(design.g_gains)
+    phase = 1.0 - phase_state[:, 0]                           # theta^ per unit phase step
+    error = freq_state[:, 0]                                  # phi, rad per Hz of step
+    nco = (g_all * error + freq_state[:, 1:].sum(axis=1)) / f   # NCO step v[n] per unit frequency step
+    steps = stride * np.arange(points)
     final_error = design.frequency_step_error(1.0)
     i_peak = int(np.argmax(np.abs(error)))
     peak = float(abs(error[i_peak]))
+    grid_fs = fs / stride                                     # metrics are computed on the returned grid
     return StepResponses(
-        time_s=np.arange(n) / fs, phase_step=phase, freq_step_nco=nco, freq_step_error=error,
-        phase_metrics=step_metrics(phase, 1.0, fs), freq_metrics=step_metrics(nco, 1.0, fs),
-        peak_error_rad_per_hz=peak, peak_error_time_s=i_peak / fs, error_final_rad_per_hz=final_error,
-        error_settling_time_s=_settling_index(error, final_error, SETTLING_BAND * peak) / fs)
+        time_s=steps / fs, phase_step=phase, freq_step_nco=nco, freq_step_error=error,
+        phase_metrics=step_metrics(phase, 1.0, grid_fs), freq_metrics=step_metrics(nco, 1.0, grid_fs),
+        peak_error_rad_per_hz=peak, peak_error_time_s=steps[i_peak] / fs, error_final_rad_per_hz=final_error,
+        error_settling_time_s=_settling_index(error, final_error, SETTLING_BAND * peak) / grid_fs)
 
 
 def closed_loop_magnitude_db(design, freqs_hz):
@@ -758,7 +794,7 @@ __all__ = [
     "lock_in_range_hz", "pull_out_hz", "pull_in_time_s", "Acquisition", "assess_acquisition",
     "SECOND_ORDER_SLIP_SHIFT_DB", "loop_snr", "slip_time_bt_first_order", "mean_time_between_slips_s",
     "tikhonov_phase_variance", "nonlinear_phase_error_variance",
-    "SETTLING_BAND", "RESPONSE_TIME_CONSTANTS", "MAX_RESPONSE_SAMPLES", "response_length", "StepMetrics",
+    "SETTLING_BAND", "RESPONSE_TIME_CONSTANTS", "RESPONSE_POINTS", "response_length", "StepMetrics",
     "step_metrics", "StepResponses", "step_responses", "closed_loop_magnitude_db", "closed_loop_peaking_db",
     "closed_loop_3db_hz", "jerk_phase_error", "total_phase_error_variance", "suggest_noise_bw",
 ]

@@ -201,6 +201,8 @@ def _fmt_time(seconds):
         return "n/a (not within the simulated window)"
     if math.isinf(seconds):
         return "never"
+    if seconds == 0.0:
+        return "0 s"
     if seconds >= 1e6 * 86400.0 * 365.0:
         return "more than a million years"
     if seconds >= 86400.0 * 365.0:
@@ -264,7 +266,11 @@ def format_text(r):
     if "offset_hz" in r:
         row(f"for a carrier offset of {r['offset_hz']:g} Hz:")
         rice = f"  [Rice's rule: {_fmt_time(r['pull_in_time_rice_s'])}]" if order > 1 else ""
-        row(f"  pull-in time (Gardner)               {_fmt_time(r['pull_in_time_s'])}{rice}")
+        if order > 1:
+            row(f"  pull-in time (Gardner)               {_fmt_time(r['pull_in_time_s'])}{rice}")
+        else:
+            row(f"  pull-in time                         {_fmt_time(r['pull_in_time_s'])} "
+                "(a first-order loop locks within its hold range or never)")
         row(f"  time to lock (+ 1.3/B_L settling)    {_fmt_time(r['lock_time_s'])}")
         verdict = "needed" if r["acquisition_needed"] else "not needed"
         row(f"  frequency acquisition aid            {verdict}: {r['acquisition_reason']}")
@@ -304,9 +310,9 @@ def write_plot(path, d, steps, r):
 
     t_end = np.nanmax([r["phase_step_settling_time_s"], r["freq_step_error_settling_time_s"],
                        10.0 / (r["actual_noise_bw_hz"])])
-    n = min(len(steps.time_s), int(np.ceil(1.5 * t_end * d.sample_rate)) + 2)
-    stride = max(1, n // 4000)
-    t = steps.time_s[:n:stride]
+    keep = steps.time_s <= 1.5 * t_end
+    keep[:2] = True
+    t = steps.time_s[keep]
     scale, unit = (1e3, "ms") if t[-1] < 2.0 else (1.0, "s")
     t = t * scale
     title = (f"order {d.loop_order}, M = {d.power}, B_L = {r['actual_noise_bw_hz']:.4g} Hz, "
@@ -315,7 +321,7 @@ def write_plot(path, d, steps, r):
     fig.suptitle(f"coherer design: {title}")
 
     ax = axes[0, 0]
-    ax.plot(t, steps.phase_step[:n:stride], label="phase estimate / step")
+    ax.plot(t, steps.phase_step[keep], label="phase estimate / step")
     ax.axhline(1.0, color="k", lw=0.8, ls=":", label="step")
     ax.axhspan(1 - design.SETTLING_BAND, 1 + design.SETTLING_BAND, color="g", alpha=0.15, label="2 % band")
     ax.set(title=f"Phase step: overshoot {r['phase_step_overshoot_pct']:.3g} %, "
@@ -324,7 +330,7 @@ def write_plot(path, d, steps, r):
     ax.legend(loc="lower right")
 
     ax = axes[0, 1]
-    ax.plot(t, steps.freq_step_nco[:n:stride], label="NCO frequency / step")
+    ax.plot(t, steps.freq_step_nco[keep], label="NCO frequency / step")
     ax.axhline(1.0, color="k", lw=0.8, ls=":", label="step")
     ax.set(title=f"Frequency step: NCO settling {_fmt_time(r['freq_step_nco_settling_time_s'])}",
            xlabel=f"time ({unit})", ylabel="NCO frequency / frequency step")
@@ -333,10 +339,10 @@ def write_plot(path, d, steps, r):
     ax = axes[1, 0]
     offset = r.get("offset_hz")
     if offset:
-        err = np.degrees(steps.freq_step_error[:n:stride] * offset)
+        err = np.degrees(steps.freq_step_error[keep] * offset)
         label, ylabel = f"phase error, {offset:g} Hz step", "phase error (deg)"
     else:
-        err = np.degrees(steps.freq_step_error[:n:stride])
+        err = np.degrees(steps.freq_step_error[keep])
         label, ylabel = "phase error per Hz of step", "phase error (deg per Hz)"
     if d.power * r["freq_step_peak_error_rad_per_hz"] * abs(offset or 1.0) > math.pi / 2:
         label += " (M x peak > 90 deg: the real loop slips)"

@@ -445,3 +445,188 @@ def test_frequency_offset_at_the_stated_limit_no_slips(tb):
     # 2 x (6 sigma) / (number of estimates); in cycles/sample, divided by 2 pi.
     f_hat = np.mean(freq_hz) / FS
     assert abs(f_hat - f) < 2 * 6 * sigma / len(freq_hz) / (2 * pi) * window + 1e-9
+
+
+# --- robustness ----------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("weighting", ["power", "magnitude", "phase"])
+def test_nan_inf_zero_and_huge_samples_do_not_poison_state(tb, weighting):
+    """NaN, Inf, zeros (a stretch longer than the window too) and a 1e30 spike: outputs stay
+    finite, gaps output 0 and are counted, and once the bad samples are out of the window the
+    estimate equals that of a clean run (up to a constant multiple of 2 pi / M)."""
+    power, window = 4, 33
+    rng = np.random.default_rng(21)
+    n_items = 6000
+    clean = (psk(rng, n_items, power, pi / 4) * np.exp(0.3j) + noise(rng, n_items, 10 ** 1.5)).astype(np.complex64)
+    bad = clean.copy()
+    bad[500], bad[501], bad[502] = np.nan, np.inf, complex(-np.inf, 1.0)
+    bad[1000:1100] = 0                              # longer than the window
+    bad[2000] = 1e30 * np.exp(2.1j)
+    bad[3000] = np.complex64(1e-40)                 # subnormal but valid
+    ref_clean = stream_ref(gr.top_block(), clean, mth_power_feedforward_cc(FS, power, window, weighting=weighting,
+                                                                         diagnostics=True))
+    blk = mth_power_feedforward_cc(FS, power, window, weighting=weighting, diagnostics=True)
+    out, ref, freq_hz, phase, _ = run_block(tb, bad, blk)
+    for a in (out, ref, freq_hz, phase):
+        assert np.all(np.isfinite(a))
+    d = window // 2
+    gap = ~(np.isfinite(bad) & (bad != 0))
+    assert blk.gap_samples() == int(np.sum(gap)) == 103
+    assert np.all(out[d:][gap[:n_items - d]] == 0)
+    np.testing.assert_allclose(np.abs(ref), 1.0, atol=1e-6)
+    # ref at output j comes from the window ending at input j: compare once the spike has left
+    # every window, away from the windows holding the (different) sample 3000
+    after = np.r_[2000 + window:3000, 3000 + window:n_items]
+    ratio = ref[after] * np.conj(ref_clean[after])
+    turns = np.angle(ratio[0]) * power / (2 * pi)
+    assert abs(turns - round(turns)) < 1e-6
+    np.testing.assert_allclose(ratio, ratio[0], rtol=0, atol=2e-6)
+
+
+@pytest.mark.parametrize("power,weighting", [(8, "power"), (16, "power"), (4, "magnitude")])
+def test_huge_amplitude_stream(tb, power, weighting):
+    """A whole stream at amplitude 1e30 gives finite outputs; where the weight does not need
+    capping (|z|^8 at 1e30, |z|) the estimate is scale invariant, as the definition is."""
+    rng = np.random.default_rng(5)
+    n_items = 3000
+    x = psk(rng, n_items, power, default_point_angle(power)) * np.exp(0.05j) + noise(rng, n_items, 10 ** 2.5)
+    ref_unit = stream_ref(gr.top_block(), x.astype(np.complex64),
+                          mth_power_feedforward_cc(FS, power, 16, weighting=weighting, diagnostics=True))
+    blk = mth_power_feedforward_cc(FS, power, 16, weighting=weighting, diagnostics=True)
+    out, ref, freq_hz, phase, _ = run_block(tb, (x * 1e30).astype(np.complex64), blk)
+    for a in (out, ref, freq_hz, phase):
+        assert np.all(np.isfinite(a))
+    if power * 30 < K.POWER_WEIGHT_EXPONENT_CAP or weighting != "power":
+        np.testing.assert_allclose(ref, ref_unit, rtol=0, atol=1e-5)
+
+
+def test_all_zero_input(tb):
+    """Only zeros: every output 0, the reference stays at 1 (theta^ held at 0)."""
+    blk = mth_power_feedforward_cc(FS, 2, 8, diagnostics=True)
+    out, ref, freq_hz, phase, _ = run_block(tb, np.zeros(500, np.complex64), blk)
+    assert np.all(out == 0) and np.all(ref == 1) and np.all(freq_hz == 0) and np.all(phase == 0)
+    assert blk.gap_samples() == 500
+
+
+def test_optional_diagnostic_outputs(tb):
+    """With diagnostics on, outputs 1-3 are optional: only out0 + ref connected works and
+    gives the same reference as all four connected."""
+    x = _scheduling_input(n_items=1500)
+    full = run_block(gr.top_block(), x, mth_power_feedforward_cc(FS, 4, 21, diagnostics=True))
+    partial = run_block(tb, x, mth_power_feedforward_cc(FS, 4, 21, diagnostics=True), n_diag=1)
+    np.testing.assert_array_equal(full[0], partial[0])
+    np.testing.assert_array_equal(full[1], partial[1])
+
+
+# --- parameters ---------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("kwargs,name", [
+    (dict(sample_rate=0), "sample_rate"), (dict(sample_rate=float("nan")), "sample_rate"),
+    (dict(sample_rate="1e6"), "sample_rate"),
+    (dict(power=0), "power"), (dict(power=17), "power"), (dict(power=2.5), "power"),
+    (dict(window=0), "window"), (dict(window=MAX_WINDOW + 1), "window"), (dict(window=8.5), "window"),
+    (dict(window=float("inf")), "window"), (dict(window=True), "window"),
+    (dict(point_angle=float("inf")), "point_angle"), (dict(point_angle="pi"), "point_angle"),
+    (dict(weighting="square"), "weighting"), (dict(weighting=2), "weighting"),
+    (dict(reset_tag_key=3), "reset_tag_key"),
+])
+def test_parameter_validation(kwargs, name):
+    """Bad constructor input raises ValueError naming the parameter and its range."""
+    args = dict(sample_rate=FS, power=4, window=64)
+    args.update(kwargs)
+    with pytest.raises(ValueError, match=name):
+        mth_power_feedforward_cc(**args)
+
+
+def test_defaults_match_the_loops():
+    """point_angle defaults as the loops (pi/4 for QPSK, else 0); the weighting default is the
+    one with the lower small-error variance (REFERENCES 6.1) at moderate SNR."""
+    for power in (1, 2, 3, 4, 8):
+        blk = mth_power_feedforward_cc(FS, power, 16)
+        assert blk.point_angle() == default_point_angle(power)
+        assert blk.weighting() == default_weighting(power)
+        assert blk.delay() == 8 and blk.window() == 16
+    assert mth_power_feedforward_cc(FS, 4, 16).point_angle() == pytest.approx(pi / 4, rel=1e-15)
+    # the default is the better one at 10 dB (formulas of REFERENCES 6.1)
+    for power in (2, 4, 8):
+        better = "power" if var_power_weighting(power, 1, 10.0) <= var_phase_weighting(power, 1, 10.0) * 1.001 \
+            else "phase"
+        assert default_weighting(power) == better or power == 2   # M = 2: equal within 0.1 %
+    assert mth_power_feedforward_cc(FS, 4, 16, reset_tag_key="").phase() == 0.0
+
+
+def test_qpsk_points_on_the_diagonals(tb):
+    """With the default point angle, corrected QPSK points sit at pi/4 + k pi/2."""
+    rng = np.random.default_rng(9)
+    x = (psk(rng, 4000, 4, pi / 4) * np.exp(1.0j) + noise(rng, 4000, 100.0)).astype(np.complex64)
+    out = run_block(tb, x, mth_power_feedforward_cc(FS, 4, 64), n_diag=0)[0][32:]
+    offset = wrap(np.angle(out) - pi / 4, pi / 2)
+    assert np.sqrt(np.mean(offset ** 2)) < 0.1     # Es/N0 20 dB: per-sample rms ~ 0.07 rad
+
+
+# --- GRC ---------------------------------------------------------------------------------------
+
+GRC_FILE = "coherer_mth_power_feedforward_cc.block.yml"
+
+
+def test_grc_yaml_schema_and_load(tmp_path):
+    """The YAML passes GRC's schema check, loads into a GRC platform with no warning, renders a
+    make line that builds the block, and its asserts mirror the constructor's validation."""
+    import logging
+    import pathlib
+
+    import yaml
+    from gnuradio.grc.core import schema_checker
+    from gnuradio.grc.core.platform import Platform
+
+    grc_dir = pathlib.Path(__file__).resolve().parents[1] / "grc"
+    with open(grc_dir / GRC_FILE) as f:
+        data = yaml.safe_load(f)
+    validator = schema_checker.Validator(schema_checker.BLOCK_SCHEME)
+    validator.run(data)
+    assert not validator.messages
+    assert data["id"] == "coherer_mth_power_feedforward_cc"
+    assert data["category"] == "[Coherer]/Feed-forward"
+    assert data["templates"]["imports"] == "from gnuradio import coherer"
+    import inspect
+    ctor = inspect.signature(mth_power_feedforward_cc.__init__).parameters
+    assert [p["id"] for p in data["parameters"]] and all(p["id"] in ctor for p in data["parameters"])
+    assert set(ctor) - {"self"} == {p["id"] for p in data["parameters"]}
+
+    records = []
+    handler = logging.Handler()
+    handler.emit = records.append
+    log = logging.getLogger("gnuradio.grc")
+    log.addHandler(handler)
+    try:
+        platform = Platform(name="coherer-test", prefs=gr.prefs(), version=gr.version(),
+                            version_parts=(gr.major_version(), gr.api_version(), gr.minor_version()))
+        platform.build_library(path=[str(grc_dir), "/usr/share/gnuradio/grc/blocks"])
+    finally:
+        log.removeHandler(handler)
+    assert "coherer_mth_power_feedforward_cc" in platform.blocks
+    assert not [r for r in records if r.levelno >= logging.WARNING and GRC_FILE in r.getMessage()]
+
+    def configured(**values):
+        fg = platform.make_flow_graph()
+        blk = fg.new_block("coherer_mth_power_feedforward_cc")
+        blk.params["id"].set_value("ff0")
+        blk.params["sample_rate"].set_value("1e6")
+        for key, value in values.items():
+            blk.params[key].set_value(value)
+        fg.rewrite()
+        fg.validate()
+        return blk, [m for m in blk.get_error_messages() if "not connected" not in m]
+
+    blk, errors = configured(reset_tag_key="burst_start", diagnostics="True", weighting='"phase"')
+    assert errors == []
+    assert [p.hidden for p in blk.sources] == [False, False, False, False]
+    assert all(p.optional for p in blk.sources[1:])
+    made = eval(blk.templates.render("make"), {"coherer": __import__("gnuradio.coherer").coherer})
+    assert isinstance(made, mth_power_feedforward_cc) and made.weighting() == "phase"
+    blk, errors = configured()
+    assert errors == [] and [p.hidden for p in blk.sources] == [False, True, True, True]
+    for key, value in [("window", "0"), ("window", "65537"), ("power", "17"), ("weighting", '"square"'),
+                       ("sample_rate", "-1")]:
+        _, errors = configured(**{key: value})
+        assert any("Assertion" in m for m in errors), (key, value)

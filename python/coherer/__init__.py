@@ -5,6 +5,7 @@ Blocks
     mth_power_loop_cc         closed-loop M-th power carrier recovery (PLL, squaring, QPSK, 8PSK loops)
     squaring_loop_cc          the same loop with M fixed at 2 (BPSK)
     lock_detector_cc          carrier lock, lock metric and Es/N0 as stream tags and status messages
+    mth_power_feedforward_cc  feed-forward M-th power (Viterbi & Viterbi) phase estimation for bursts
 
 Modules
     design                    loop gains, noise bandwidth and performance predictions
@@ -16,3 +17,4 @@ from . import design, metadata
 from .mth_power_loop_cc import mth_power_loop_cc
 from .squaring_loop_cc import squaring_loop_cc
 from .lock_detector_cc import lock_detector_cc
+from .mth_power_feedforward_cc import mth_power_feedforward_cc

@@ -66,7 +66,7 @@ S_FREQ = 13        # latest frequency estimate, rad/sample
 STATE_SIZE = 14
 
 #: Amplitude above which |x|^M is evaluated at this amplitude instead (power
-#: weighting), so that a sum of up to MAX_WINDOW terms stays below 1e300.
+#: weighting): |x|^M <= 1e294, so a sum of up to 65536 terms stays finite.
 POWER_WEIGHT_EXPONENT_CAP = 294.0
 SATURATE = 2 ** 52
 TWO_PI = 2.0 * np.pi
@@ -155,18 +155,29 @@ def _mth_power_terms(x, power, weighting, tr, ti, valid):
 
 @njit(cache=True, error_model="numpy")
 def _principal_roots(sr, si, power, rr, ri):
-    """Principal M-th root of S / |S| (arg in (-pi, pi]) for every S; (1, 0) where S = 0.
+    """Normalise every S in place to the unit phasor w = S / |S| (0 stays 0) and write the
+    principal M-th root of w (arg in (-pi, pi]) to rr, ri; (1, 0) where S = 0.
 
-    Half-angle steps (no trigonometry) when M is a power of two, else atan2/cos/sin.
+    |S| is formed after scaling by max(|Re S|, |Im S|), so no S up to the float64 range
+    overflows. Half-angle steps (no trigonometry) when M is a power of two, else
+    atan2/cos/sin.
     """
     n_items = sr.shape[0]
     for n in range(n_items):
         a = sr[n]
         b = si[n]
-        mag = np.sqrt(a * a + b * b)
-        inv = 1.0 / mag if mag > 0.0 else 0.0
-        rr[n] = a * inv if mag > 0.0 else 1.0
-        ri[n] = b * inv
+        big = max(abs(a), abs(b))
+        ok = big > 0.0
+        inv_big = 1.0 / big if ok else 0.0
+        a *= inv_big
+        b *= inv_big
+        inv = 1.0 / np.sqrt(a * a + b * b) if ok else 0.0
+        a *= inv
+        b *= inv
+        sr[n] = a
+        si[n] = b
+        rr[n] = a if ok else 1.0
+        ri[n] = b
     if power & (power - 1) == 0:
         m = power
         while m > 1:
@@ -236,8 +247,9 @@ def _sliding_sums(tr, ti, resets, state, terms, suffix, window, rot_re, rot_im, 
 @njit(cache=True, error_model="numpy")
 def _unwrap_and_output(x, valid, sr, si, rr, ri, out, ref, freq, phase, resets, state, delay_x,
                        delay_p, delay_f, history_p, power, window, roots_re, roots_im):
-    """V&V unwrapping of each estimate, phase assignment to the sample at the window
-    centre (or, at a reset, to the samples still in the delay), outputs."""
+    """V&V unwrapping of each estimate (``sr``, ``si``: unit phasors S/|S|, 0 where S = 0),
+    phase assignment to the sample at the window centre (or, at a reset, to the samples
+    still in the delay), outputs."""
     n_items = x.shape[0]
     n_resets = resets.shape[0]
     delay = window // 2

@@ -176,6 +176,9 @@ def main(args):
     from .console import clean_stdout
     from .run import check_settings, process, settings_from_args
 
+    sc = BalloonScenario() if args.seed is None else replace(BalloonScenario(), seed=args.seed)
+    settings = settings_from_args(args)
+    check_settings(settings, sc.sample_rate, sc.num_samples)
     out_dir = Path(args.output)
     if out_dir.exists() and not out_dir.is_dir():
         raise UserError(f"--output {out_dir} exists and is not a folder")
@@ -184,13 +187,10 @@ def main(args):
     except OSError as exc:
         raise UserError(f"--output {out_dir}: cannot create ({exc.strerror})") from None
 
-    sc = BalloonScenario() if args.seed is None else replace(BalloonScenario(), seed=args.seed)
-    settings = settings_from_args(args)
     meta = write_sigmf(out_dir / RECORDING_NAME, sc.synthesise(), sc.sample_rate, "cf32_le",
                        sc.center_freq_hz, sc.description(),
                        {"core:author": "gr-coherer demo (invented data)"})
     rec = open_recording(meta)
-    check_settings(settings, rec)
 
     with clean_stdout() as out:
         out.write(f"coherer demo: invented balloon BPSK downlink, {sc.duration_s:.0f} s at "

@@ -139,21 +139,22 @@ def settings_from_args(args):
                             freq_guess_hz=args.freq_guess)
 
 
-def check_settings(settings, rec):
-    """Check loop settings against the recording; raise UserError naming the option."""
+def check_settings(settings, sample_rate, num_samples):
+    """Check loop settings against a recording's rate (samples/s) and length (samples);
+    raise UserError naming the option."""
     from ..design import validate_spec
     try:
-        validate_spec(rec.sample_rate, settings.power, settings.noise_bw_hz, settings.damping,
+        validate_spec(sample_rate, settings.power, settings.noise_bw_hz, settings.damping,
                       settings.loop_order)
     except ValueError as exc:
         raise UserError(_option_message(str(exc))) from None
-    limit = rec.sample_rate / (2.0 * settings.power)
+    limit = sample_rate / (2.0 * settings.power)
     if abs(settings.freq_guess_hz) > limit:
         raise UserError(f"--freq-guess must be within +-sample rate/(2M) = +-{limit:g} Hz, "
                         f"got {settings.freq_guess_hz:g}")
-    if settings.window > rec.num_samples:
+    if settings.window > num_samples:
         raise UserError(f"--window {settings.window} is longer than the recording "
-                        f"({rec.num_samples} samples)")
+                        f"({num_samples} samples)")
 
 
 def _option_message(msg):
@@ -252,7 +253,7 @@ def main(args):
 
     rec = open_input(args)
     settings = settings_from_args(args)
-    check_settings(settings, rec)
+    check_settings(settings, rec.sample_rate, rec.num_samples)
     if args.events:
         _check_output_file(args.events, "--events")
     if args.report:

@@ -517,7 +517,7 @@ def test_live_example_uses_soapy_source_and_tuning_options(compiled_examples):
     options = import_generated(script, env, "live_soapy_receiver",
                                ["--driver", "hackrf", "--center-freq", "145.9e6"])
     assert options["driver"] == "hackrf" and options["center_freq"] == 145.9e6
-    assert {"dev_args", "ppm", "power", "hw_rate"} <= set(options)
+    assert {"dev_args", "antenna", "ppm", "power", "hw_rate"} <= set(options)
 
 
 # The headless scenario (qpsk_doppler_headless.grc): QPSK, M = 4, 1.5 s at 100 ksps,

@@ -1,0 +1,198 @@
+/* SPDX-License-Identifier: GPL-3.0-or-later
+ *
+ * Plain C reference of the gr-coherer M-th power carrier loop, used by
+ * `coherer bench` as the compiled-code yardstick. It runs the same per-sample
+ * recursion as python/coherer/_loop_kernel.py in float64, written the
+ * straightforward way: one sin/cos of the NCO phase per sample.
+ *
+ *   y   = x e^{-j theta}                          derotate
+ *   d   = (y_lim / sqrt(M2))^M e^{-j M point_angle}  M-th power detector (repeated squaring)
+ *   e   = Im(d) / (S/M2)^(M/2)                     normalised by the M2M4 signal estimate
+ *   acc2 += K3 e; acc1 += K2 e + acc2              PI filter + double integrator (clamped)
+ *   theta += K1 e + acc1                           NCO (used from the next sample on)
+ *
+ * Gaps (non-finite or zero samples) coast the NCO and output 0; a sample whose
+ * power exceeds LIMIT * M2 is limited to that power before the detector; a
+ * lasting 20 dB level step (64-sample average) rescales the moments; the loop
+ * stays open until the moment weight reaches START_MW; e is clipped to +-E_MAX. The lock indicator and
+ * slip tracker of the block are not part of this reference.
+ *
+ * Usage:
+ *   reference_loop IN.cf32 M K1 K2 K3 ROT_RE ROT_IM FMIN FMAX ALPHA SIG2_FLOOR START_MW E_MAX
+ *                  FREQ0 REPS [OUT.cf32]
+ * IN/OUT are interleaved little-endian float32 I/Q. The loop runs REPS times over the
+ * whole input, each time from the same initial state (phase 0, frequency FREQ0 rad/sample).
+ * Prints one line per repetition: "rep <i> seconds <t> msps <r>", then
+ * "final phase <rad> freq <rad/sample>". File I/O is outside the timed region.
+ */
+#define _GNU_SOURCE
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <time.h>
+
+#define LIMIT 100.0
+#define FAST_ALPHA (1.0 / 64.0)
+#define LEVEL_STEP 100.0
+
+typedef struct { double re, im; } cplx;
+
+static double now_s(void)
+{
+    struct timespec ts;
+    clock_gettime(CLOCK_MONOTONIC, &ts);
+    return ts.tv_sec + 1e-9 * ts.tv_nsec;
+}
+
+static cplx cmul(cplx a, cplx b)
+{
+    cplx r = { a.re * b.re - a.im * b.im, a.re * b.im + a.im * b.re };
+    return r;
+}
+
+static cplx cpow_int(cplx z, int m)
+{
+    cplx result = { 1.0, 0.0 }, base = z;
+    while (m > 0) {
+        if (m & 1)
+            result = cmul(result, base);
+        base = cmul(base, base);
+        m >>= 1;
+    }
+    return result;
+}
+
+typedef struct {
+    int power;
+    double k1, k2, k3, fmin, fmax, alpha, sig2_floor, start_mw, e_max;
+    cplx rot;
+} params_t;
+
+typedef struct { double phase, acc1, acc2, m2, m4, mw, fast_m2; } state_t;
+
+static void run_loop(const float *x, float *out, long n, const params_t *p, state_t *s)
+{
+    double phase = s->phase, acc1 = s->acc1, acc2 = s->acc2;
+    double m2 = s->m2, m4 = s->m4, mw = s->mw, fast_m2 = s->fast_m2;
+    const double quarter_power = 0.25 * p->power;
+    for (long i = 0; i < n; i++) {
+        double c = cos(phase), sn = sin(phase);
+        double xr = x[2 * i], xi = x[2 * i + 1];
+        double pw = xr * xr + xi * xi;
+        if (!isfinite(pw) || pw == 0.0) {
+            out[2 * i] = 0.0f;
+            out[2 * i + 1] = 0.0f;
+        } else {
+            cplx y = { xr * c + xi * sn, xi * c - xr * sn };
+            out[2 * i] = (float)y.re;
+            out[2 * i + 1] = (float)y.im;
+            if (mw > 0.0) {
+                double cap = LIMIT * m2 / mw;
+                if (pw > cap) {
+                    double scale = sqrt(cap / pw);
+                    y.re *= scale;
+                    y.im *= scale;
+                    pw = cap;
+                }
+                fast_m2 += FAST_ALPHA * (pw - fast_m2);
+                double level = fast_m2 * mw / m2;
+                if (level > LEVEL_STEP || level < 1.0 / LEVEL_STEP) {
+                    m2 *= level;
+                    m4 *= level * level;
+                }
+            } else {
+                fast_m2 = pw;
+            }
+            m2 += p->alpha * (pw - m2);
+            m4 += p->alpha * (pw * pw - m4);
+            mw += p->alpha * (1.0 - mw);
+            double mm2 = m2 / mw;
+            double sig2 = 2.0 - (m4 / mw) / (mm2 * mm2);
+            if (sig2 < p->sig2_floor)
+                sig2 = p->sig2_floor;
+            double g = 1.0 / sqrt(mm2);
+            cplx yn = { y.re * g, y.im * g };
+            cplx d = cmul(cpow_int(yn, p->power), p->rot);
+            double e = d.im / pow(sig2, quarter_power);
+            if (mw < p->start_mw)
+                e = 0.0;
+            else if (e > p->e_max)
+                e = p->e_max;
+            else if (e < -p->e_max)
+                e = -p->e_max;
+            acc2 += p->k3 * e;
+            acc1 += p->k2 * e + acc2;
+            if (acc1 > p->fmax) {
+                acc1 = p->fmax;
+                if (acc2 > 0.0)
+                    acc2 = 0.0;
+            } else if (acc1 < p->fmin) {
+                acc1 = p->fmin;
+                if (acc2 < 0.0)
+                    acc2 = 0.0;
+            }
+            phase += p->k1 * e;
+        }
+        phase += acc1;
+        if (phase >= M_PI || phase < -M_PI)
+            phase -= 2.0 * M_PI * floor((phase + M_PI) / (2.0 * M_PI));
+    }
+    s->phase = phase; s->acc1 = acc1; s->acc2 = acc2;
+    s->m2 = m2; s->m4 = m4; s->mw = mw; s->fast_m2 = fast_m2;
+}
+
+int main(int argc, char **argv)
+{
+    if (argc != 16 && argc != 17) {
+        fprintf(stderr, "usage: %s IN.cf32 M K1 K2 K3 ROT_RE ROT_IM FMIN FMAX ALPHA SIG2_FLOOR START_MW "
+                "E_MAX FREQ0 REPS [OUT.cf32]\n", argv[0]);
+        return 2;
+    }
+    params_t p;
+    p.power = atoi(argv[2]);
+    p.k1 = atof(argv[3]); p.k2 = atof(argv[4]); p.k3 = atof(argv[5]);
+    p.rot.re = atof(argv[6]); p.rot.im = atof(argv[7]);
+    p.fmin = atof(argv[8]); p.fmax = atof(argv[9]); p.alpha = atof(argv[10]);
+    p.sig2_floor = atof(argv[11]); p.start_mw = atof(argv[12]); p.e_max = atof(argv[13]);
+    double freq0 = atof(argv[14]);
+    int reps = atoi(argv[15]);
+    if (p.power < 1 || reps < 1) {
+        fprintf(stderr, "M and REPS must be >= 1\n");
+        return 2;
+    }
+
+    FILE *f = fopen(argv[1], "rb");
+    if (!f) { perror(argv[1]); return 2; }
+    fseek(f, 0, SEEK_END);
+    long n = ftell(f) / (2 * (long)sizeof(float));
+    fseek(f, 0, SEEK_SET);
+    float *x = malloc(n * 2 * sizeof(float)), *out = malloc(n * 2 * sizeof(float));
+    if (!x || !out || (long)fread(x, 2 * sizeof(float), n, f) != n) {
+        fprintf(stderr, "cannot read %s\n", argv[1]);
+        return 2;
+    }
+    fclose(f);
+
+    state_t s;
+    for (int r = 0; r < reps; r++) {
+        state_t fresh = { 0.0, freq0, 0.0, 0.0, 0.0, 0.0, 0.0 };
+        s = fresh;
+        double t0 = now_s();
+        run_loop(x, out, n, &p, &s);
+        double dt = now_s() - t0;
+        printf("rep %d seconds %.9f msps %.6f\n", r, dt, n / dt / 1e6);
+    }
+    printf("final phase %.17g freq %.17g\n", s.phase, s.acc1);
+
+    if (argc == 17) {
+        FILE *g = fopen(argv[16], "wb");
+        if (!g || (long)fwrite(out, 2 * sizeof(float), n, g) != n) {
+            fprintf(stderr, "cannot write %s\n", argv[13]);
+            return 2;
+        }
+        fclose(g);
+    }
+    free(x);
+    free(out);
+    return 0;
+}

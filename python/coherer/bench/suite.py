@@ -1,0 +1,282 @@
+# SPDX-License-Identifier: GPL-3.0-or-later
+"""The whole benchmark behind ``coherer bench``: what is measured, in which order,
+and how it is reported (result dict for ``--json``, text table otherwise).
+
+Every figure is the median of several repetitions on the same data in the same
+run; a figure whose repetitions spread by more than 10 % is marked noisy.
+"""
+
+import importlib
+import os
+import pathlib
+import platform
+import subprocess
+import tempfile
+import time
+
+import numba
+import numpy as np
+from gnuradio import gr
+
+from .. import _loop_kernel as K
+from ..mth_power_loop_cc import mth_power_loop_cc
+from ..squaring_loop_cc import squaring_loop_cc
+from . import creference, measure, soak as soak_mod, stream
+
+#: Nominal sample rate given to the blocks, samples/s (throughput is rate independent).
+SAMPLE_RATE = 1e6
+#: Loop noise bandwidth of every benchmarked loop, Hz (B_L T = 1e-3).
+NOISE_BW_HZ = 1000.0
+#: Samples per run and repetitions: full bench and ``--quick``.
+FULL = {"samples": 1 << 21, "reps": 5}
+QUICK = {"samples": 1 << 15, "reps": 2}
+#: Samples of the ``--soak`` run (issue 7: 2e8).
+SOAK_SAMPLES = 200_000_000
+#: Window of the feed-forward estimator in the benchmark, samples.
+FEEDFORWARD_WINDOW = 256
+#: Acceptance targets of issue 7 (ratios).
+TARGET_LOOP_VS_C = 1.0
+GOAL_LOOP_VS_C = 1.5
+TARGET_HIGH_M_VS_M2 = 0.75
+TARGET_DETECTOR_VS_C = 3.0
+TARGET_TWO_CHAINS = 1.7
+
+
+# --- what is benchmarked ---------------------------------------------------------------
+
+def _loop(power, loop_order=2):
+    def make():
+        return mth_power_loop_cc(SAMPLE_RATE, power, NOISE_BW_HZ, loop_order=loop_order,
+                                 acquire=False)
+    return make
+
+
+def _squaring():
+    return squaring_loop_cc(SAMPLE_RATE, NOISE_BW_HZ, acquire=False)
+
+
+def _optional_block(module_name, class_name, *args, **kwargs):
+    """Factory for a block that may not exist in this build; (factory, None) or (None, reason)."""
+    try:
+        module = importlib.import_module(f"..{module_name}", __package__)
+        cls = getattr(module, class_name)
+
+        def make():
+            return cls(*args, **kwargs)
+        make()                          # fails now, not in the middle of the table
+        return make, None
+    except Exception as exc:            # noqa: BLE001 - any failure means "skip with a note"
+        return None, f"{class_name} not available: {type(exc).__name__}: {exc}"
+
+
+def block_specs():
+    """(name, power, factory or None, is_loop, skip note) for every benchmarked block."""
+    specs = [
+        ("squaring loop (M=2)", 2, _squaring, True, None),
+        ("M-th power loop M=4", 4, _loop(4), True, None),
+        ("M-th power loop M=8", 8, _loop(8), True, None),
+        ("third-order loop (M=2)", 2, _loop(2, loop_order=3), True, None),
+    ]
+    make, note = _optional_block("lock_detector_cc", "lock_detector_cc", SAMPLE_RATE, 2)
+    specs.append(("lock detector (M=2)", 2, make, False, note))
+    make, note = _optional_block("mth_power_feedforward_cc", "mth_power_feedforward_cc",
+                                 SAMPLE_RATE, 4, FEEDFORWARD_WINDOW)
+    specs.append((f"feed-forward M=4 (window {FEEDFORWARD_WINDOW})", 4, make, False, note))
+    return specs
+
+
+# --- machine description ------------------------------------------------------------------
+
+def cpu_model():
+    """CPU model name from /proc/cpuinfo (or the platform's processor string)."""
+    try:
+        with open("/proc/cpuinfo") as f:
+            for line in f:
+                if line.startswith("model name"):
+                    return line.split(":", 1)[1].strip()
+    except OSError:
+        pass
+    return platform.processor() or "unknown"
+
+
+def _compiler_version(exe):
+    try:
+        out = subprocess.run([exe, "--version"], capture_output=True, text=True).stdout
+        return out.splitlines()[0] if out else "unknown"
+    except OSError:
+        return "unknown"
+
+
+def machine():
+    """Description of the machine and software the figures were taken on."""
+    return {"cpu_model": cpu_model(), "cores": os.cpu_count(),
+            "load_average": list(os.getloadavg()), "python": platform.python_version(),
+            "gnuradio": gr.version(), "numba": numba.__version__, "numpy": np.__version__}
+
+
+# --- the run ----------------------------------------------------------------------------
+
+def _ratio(a, b):
+    return a / b if a and b else None
+
+
+def run(quick=False, soak=False, soak_samples=SOAK_SAMPLES, progress=None):
+    """Run the benchmark; returns the result dict (see ``--json``)."""
+    say = progress or (lambda msg: None)
+    cfg = QUICK if quick else FULL
+    n, reps = cfg["samples"], cfg["reps"]
+    started = time.perf_counter()
+    result = {"machine": machine(), "samples": n, "repetitions": reps,
+              "sample_rate": SAMPLE_RATE, "noise_bw_hz": NOISE_BW_HZ,
+              "esn0_db": stream.BENCH_ESN0_DB, "noisy_spread": measure.NOISY_SPREAD,
+              "blocks": [], "skipped": []}
+    with tempfile.TemporaryDirectory(prefix="coherer-bench-") as tmp:
+        tmp = pathlib.Path(tmp)
+        data = {}
+        for power in (2, 4, 8):
+            data[power] = stream.psk_stream(power, n, seed=power)
+            stream.write_cf32(tmp / f"psk{power}.cf32", data[power])
+
+        # first: a fresh block in a process that has not run the kernel yet
+        say("first-sample latency")
+        construction, latency = measure.first_sample_latency(_squaring, tmp / "psk2.cf32")
+        result["latency"] = {"block": "squaring loop (M=2)", "construction_s": construction,
+                             "first_output_s": latency}
+
+        say("compiling the C reference")
+        exe, flags = creference.compile_reference(tmp)
+        result["c_reference"] = {"command": flags, "source": creference.SOURCE.name,
+                                 "compiler": _compiler_version(creference.find_compiler())}
+        c_rates = {}
+
+        for name, power, make, is_loop, note in block_specs():
+            if make is None:
+                result["skipped"].append({"block": name, "reason": note})
+                say(f"skipped {name}: {note}")
+                continue
+            say(name)
+            path = tmp / f"psk{power}.cf32"
+            row = {"block": name, "power": power}
+            if is_loop:
+                row["kernel"] = measure.summarise(measure.kernel_rates(make, data[power], reps))
+                blk = make()
+                ref = creference.run_reference(exe, path, blk._params, power,
+                                               freq0=blk._state[K.S_FREQ], reps=reps)
+                row["c"] = measure.summarise([n / s / 1e6 for s in ref.seconds])
+                c_rates.setdefault(power, row["c"]["median"])
+            else:
+                row["kernel"] = None
+            row["flowgraph"] = measure.summarise(measure.flowgraph_rates(make, path, n, reps))
+            c_med = row["c"]["median"] if is_loop else c_rates.get(power)
+            row["c_msps_compared"] = c_med
+            row["flowgraph_vs_c"] = _ratio(row["flowgraph"]["median"], c_med)
+            row["kernel_vs_c"] = _ratio(row["kernel"]["median"], c_med) if row["kernel"] else None
+            result["blocks"].append(row)
+
+        say("framework floor (Python copy block)")
+        result["framework_floor"] = measure.summarise(
+            measure.flowgraph_rates(measure.copy_cc, tmp / "psk2.cf32", n, reps))
+
+        say("two chains vs one")
+        one = measure.summarise(measure.flowgraph_rates(_squaring, tmp / "psk2.cf32", n, reps, 1))
+        two = measure.summarise(measure.flowgraph_rates(_squaring, tmp / "psk2.cf32", n, reps, 2))
+        result["two_chains"] = {"block": "squaring loop (M=2)", "one_chain": one,
+                                "two_chains": two,
+                                "ratio": _ratio(two["median"], one["median"])}
+
+        if soak:
+            say(f"soak: {soak_samples:.3g} samples through the squaring loop")
+            result["soak"] = soak_mod.soak(_squaring, tmp / "psk2.cf32", soak_samples)
+
+    result["machine"]["load_average_end"] = list(os.getloadavg())
+    result["acceptance"] = acceptance(result)
+    result["elapsed_s"] = time.perf_counter() - started
+    return result
+
+
+def acceptance(result):
+    """Issue 7 acceptance checks that this run can evaluate: list of dicts."""
+    rows = {r["block"]: r for r in result["blocks"]}
+    checks = []
+
+    def add(what, value, target, goal=None):
+        checks.append({"check": what, "value": value, "target": target, "goal": goal,
+                       "met": None if value is None else bool(value >= target)})
+
+    sq = rows.get("squaring loop (M=2)")
+    if sq:
+        add("squaring loop in flowgraph / C loop", sq["flowgraph_vs_c"], TARGET_LOOP_VS_C,
+            GOAL_LOOP_VS_C)
+        for m in (4, 8):
+            hi = rows.get(f"M-th power loop M={m}")
+            if hi:
+                add(f"M={m} / M=2 in flowgraph",
+                    _ratio(hi["flowgraph"]["median"], sq["flowgraph"]["median"]),
+                    TARGET_HIGH_M_VS_M2)
+    det = rows.get("lock detector (M=2)")
+    if det:
+        add("lock detector in flowgraph / C loop", det["flowgraph_vs_c"], TARGET_DETECTOR_VS_C)
+    if "two_chains" in result:
+        add("two chains / one chain", result["two_chains"]["ratio"], TARGET_TWO_CHAINS)
+    if "soak" in result:
+        s = result["soak"]
+        checks.append({"check": "soak RSS growth after warm-up, MB", "value": s["growth_mb"],
+                       "target": f"< {s['limit_mb']:g}", "goal": None, "met": s["passed"]})
+    return checks
+
+
+# --- text report ---------------------------------------------------------------------------
+
+def _fig(f):
+    if not f:
+        return "-"
+    return f"{f['median']:.1f}{'~' if f['noisy'] else ''}"
+
+
+def _r(x):
+    return "-" if x is None else f"{x:.2f}x"
+
+
+def format_table(result):
+    """The human-readable report: throughput table, ratios and acceptance checks."""
+    m = result["machine"]
+    lines = [f"coherer bench: {result['samples']} samples per run, median of "
+             f"{result['repetitions']} repetitions, Msps (~ = noisy: spread > "
+             f"{100 * result['noisy_spread']:.0f} %)",
+             f"machine: {m['cores']} cores, {m['cpu_model']}, load average at start "
+             f"{m['load_average'][0]:.2f}, at end {m['load_average_end'][0]:.2f}",
+             f"C reference: {result['c_reference']['command']} "
+             f"({result['c_reference']['compiler']})", ""]
+    head = f"{'block':34s} {'kernel':>8s} {'flowgraph':>10s} {'C loop':>8s} {'fg / C':>7s} {'kernel / C':>10s}"
+    lines += [head, "-" * len(head)]
+    for r in result["blocks"]:
+        c = r["c"] if "c" in r else None
+        c_text = _fig(c) if c else ("-" if r["c_msps_compared"] is None
+                                    else f"({r['c_msps_compared']:.1f})")
+        lines.append(f"{r['block']:34s} {_fig(r['kernel']):>8s} {_fig(r['flowgraph']):>10s} "
+                     f"{c_text:>8s} {_r(r['flowgraph_vs_c']):>7s} {_r(r['kernel_vs_c']):>10s}")
+    f = result["framework_floor"]
+    lines.append(f"{'framework floor (Python copy block)':34s} {'-':>8s} {_fig(f):>10s}")
+    for s in result["skipped"]:
+        lines.append(f"{s['block']:34s} skipped: {s['reason']}")
+    t = result["two_chains"]
+    lines += ["", f"two chains on two cores ({t['block']}): {_fig(t['two_chains'])} Msps together vs "
+              f"{_fig(t['one_chain'])} for one chain = {_r(t['ratio'])}"]
+    lat = result["latency"]
+    first = "none" if lat["first_output_s"] is None else f"{1e3 * lat['first_output_s']:.1f} ms"
+    lines.append(f"first-sample latency ({lat['block']}, fresh block): construction "
+                 f"{1e3 * lat['construction_s']:.0f} ms, tb.start() -> first output {first}")
+    if "soak" in result:
+        s = result["soak"]
+        lines.append(f"soak: {s['samples']:.3g} samples at {s['msps']:.1f} Msps, RSS "
+                     f"{s['rss_warm_mb']:.1f} MB after warm-up, peak {s['rss_peak_mb']:.1f} MB, "
+                     f"growth {s['growth_mb']:.2f} MB (limit {s['limit_mb']:g} MB)")
+    lines += ["", "acceptance (issue 7):"]
+    for c in result["acceptance"]:
+        val = "-" if c["value"] is None else f"{c['value']:.2f}"
+        tgt = c["target"] if isinstance(c["target"], str) else f">= {c['target']:g}"
+        goal = f", goal {c['goal']:g}" if c["goal"] else ""
+        verdict = {True: "met", False: "NOT met", None: "n/a"}[c["met"]]
+        lines.append(f"  {c['check']:40s} {val:>7s}  (target {tgt}{goal})  {verdict}")
+    lines.append(f"\nbench took {result['elapsed_s']:.0f} s")
+    return "\n".join(lines)

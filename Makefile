@@ -8,7 +8,7 @@ setup:
 	@bash scripts/bootstrap.sh
 
 demo: setup
-	$(PY) examples/bpsk_squaring_demo.py
+	$(VENV)/bin/coherer demo
 
 test: setup
 	$(PY) -m pytest

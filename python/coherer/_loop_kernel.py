@@ -18,7 +18,12 @@ Per sample n (x = input, theta^ = NCO phase, rad; v = NCO step, rad/sample)::
 (``S = sqrt(2 M2^2 - M4)``, Pauluzzi & Beaulieu 2000) from exponentially
 averaged moments of |x|^2 and |x|^4, floored so that the gain boost
 ``(M2/S)^(M/2)`` stays bounded. The loop stays open (the NCO coasts) for the
-first few hundred samples, until the moments have settled. Normalising
+first few hundred samples, until the moments have settled. The detector
+output is clipped so that one sample never moves the NCO phase by more than
+pi/(2M) (a quarter of the M-domain ambiguity). The clip sits at about
+0.83 sqrt(rho_psi / (B_L T)) standard deviations of the detector noise
+(rho_psi the loop SNR of REFERENCES 5): more than 5 for rho_psi >= 2 and
+B_L T <= 0.05, so it only acts on start-up transients and outliers. Normalising
 by the signal part (not total power) keeps the detector gain at exactly M and
 hence the loop noise bandwidth at its design value for any amplitude and SNR.
 
@@ -91,7 +96,8 @@ P_REF_G2 = 13
 P_REF_G3 = 14
 P_SIG2_FLOOR = 15    # floor of (S/M2)^2: caps the detector-gain boost at low SNR
 P_START_MW = 16      # the loop closes once the moment weight reaches this (start-up)
-PARAMS_SIZE = 17
+P_E_MAX = 17         # clip of the normalised detector output: K1 e_max = pi / (2 M)
+PARAMS_SIZE = 18
 
 LIMIT = 100.0                      # sample power limit relative to M2 (+20 dB)
 FAST_ALPHA = 1.0 / 64.0            # averaging coefficient of the level-step detector
@@ -150,6 +156,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     inv_power = 1.0 / power
     sig2_floor = params[P_SIG2_FLOOR]
     start_mw = params[P_START_MW]
+    e_max = params[P_E_MAX]
     quarter_power = 0.25 * power
 
     phase = state[S_PHASE]
@@ -223,6 +230,10 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             e = d.imag / sig2 ** quarter_power   # / (S/M2)^(M/2): mean sin(M phi)
             if mw < start_mw:
                 e = 0.0                          # start-up: moments not settled yet, coast
+            elif e > e_max:
+                e = e_max
+            elif e < -e_max:
+                e = -e_max
             acc2 += k3 * e
             acc1 += k2 * e + acc2
             if acc1 > fmax:

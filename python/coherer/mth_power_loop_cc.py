@@ -168,6 +168,7 @@ class mth_power_loop_cc(gr.sync_block):
         s_min = max(MIN_SIGNAL_FRACTION, MAX_GAIN_BOOST ** (-2.0 / self._power))
         p[K.P_SIG2_FLOOR] = s_min * s_min
         p[K.P_START_MW] = 1.0 - (1.0 - p[K.P_ALPHA]) ** START_SAMPLES
+        p[K.P_E_MAX] = (pi / self._power) / d.k1
         self._params, self._design = p, d      # work() reads self._params once per call
 
     def _warm_up(self):

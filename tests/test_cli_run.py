@@ -424,3 +424,34 @@ def test_help_lists_units():
     assert proc.returncode == 0
     for words in ("Hz", "samples/s", "--events", "--report", "--annotate", "cu8", "Exit status"):
         assert words in proc.stdout
+
+
+def test_progress_bar_only_on_a_terminal(tmp_path):
+    """stderr a pseudo-terminal: the bar is drawn there (carriage-return updates); stderr a
+    pipe (every other test here): no bar. stdout is a pipe in both cases and holds the table."""
+    import pty
+    import subprocess
+
+    from clirunner import PYTHON, env
+
+    meta = write_sigmf(tmp_path, "pass", encode(bpsk(seed=19), "cf32_le"))
+    master, slave = pty.openpty()
+    proc = subprocess.Popen([PYTHON, "-m", "gnuradio.coherer", "run", str(meta), *map(str, LOOP)],
+                            env=env(), stdout=subprocess.PIPE, stderr=slave, stdin=subprocess.DEVNULL)
+    os.close(slave)
+    seen = b""
+    while True:
+        try:
+            chunk = os.read(master, 4096)
+        except OSError:          # the child closed the terminal
+            break
+        if not chunk:
+            break
+        seen += chunk
+    out, _ = proc.communicate(timeout=120)
+    os.close(master)
+    assert proc.returncode == 0
+    assert b"\rcoherer run [" in seen and b"100.0%" in seen
+    assert b"coherer run [" not in out and out.startswith(b"time (s)")
+    piped = coherer("run", meta, *LOOP)
+    assert "coherer run [" not in piped.stderr

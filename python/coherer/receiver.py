@@ -298,7 +298,7 @@ def run_receiver(rec, settings, progress=None):
     # the detector releases whole windows only: a last partial window is not processed
     processed = sink.progress
     if progress is not None:
-        progress(processed, total)
+        progress(total, total)          # the run is complete
     sink.finish(processed)
 
     thresholds = (_getter(det, "lock_threshold"), _getter(det, "unlock_threshold"))

@@ -64,10 +64,12 @@ class Progress:
             self._stream.flush()
 
 
-def events_table(events, center_freq_hz=None):
-    """The events as an aligned text table (one line per event)."""
+def events_table(events, center_freq_hz=None, limit=None):
+    """The events as an aligned text table (one line per event; with ``limit``, the
+    first ``limit`` events and a line counting the rest)."""
     rows = [("time (s)", "sample", "event", "freq (Hz)", "metric", "Es/N0 (dB)", "slips")]
-    for e in events:
+    shown = events if limit is None else events[:limit]
+    for e in shown:
         rows.append((f"{e['time_s']:.4f}", str(e["sample"]), e["event"],
                      _num(e.get("freq_hz"), "{:+.2f}"), _num(e.get("metric"), "{:.3f}"),
                      _num(e.get("esn0_db"), "{:.2f}"), _num(e.get("slips"), "{:+d}")))
@@ -76,6 +78,8 @@ def events_table(events, center_freq_hz=None):
              for r in rows]
     if len(rows) == 1:
         lines.append("(no events: the carrier never locked)")
+    if len(shown) < len(events):
+        lines.append(f"... and {len(events) - len(shown)} more event(s), all in the events file")
     if center_freq_hz is not None:
         lines.append(f"freq is the offset from the capture centre {center_freq_hz / 1e6:.6f} MHz")
     return "\n".join(lines)

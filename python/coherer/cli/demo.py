@@ -40,6 +40,7 @@ ESN0_TOL_DB = 0.5          # issue 6 acceptance: Es/N0 within 0.5 dB
 # linear theory itself is within a few per cent at these loop SNRs (REFERENCES 4).
 PHASE_RMS_REL_TOL = 0.2
 SLIP_WINDOW_S = 3.0        # slips declared within this after the jump belong to it
+TABLE_ROWS = 30            # events printed; all of them go to events.json
 
 
 def register(subparsers):
@@ -197,7 +198,7 @@ def main(args):
                   f"{sc.sample_rate:.0f} samples/s, written to {meta}\n")
         out.write(f"loop: M = {settings.power}, B_L = {settings.noise_bw_hz:g} Hz, "
                   f"damping {settings.damping:g}, order {settings.loop_order}\n\n")
-        result = process(rec, settings, out, out_dir / "events.json")
+        result = process(rec, settings, out, out_dir / "events.json", table_limit=TABLE_ROWS)
         checks = judge(result, sc)
         out.write("\nverdict against the scenario's truth\n" + verdict_table(checks) + "\n")
         report.write_report(result, out_dir / "report", truth=sc,

@@ -172,9 +172,9 @@ def open_input(args):
         raise UserError(str(exc)) from None
 
 
-def process(rec, settings, out, events_path=None):
-    """Run the receiver over ``rec``, print warnings (stderr) and the events table (``out``),
-    write the events JSON. Returns the RunResult."""
+def process(rec, settings, out, events_path=None, table_limit=None):
+    """Run the receiver over ``rec``, print warnings (stderr) and the events table (``out``,
+    at most ``table_limit`` rows), write the events JSON. Returns the RunResult."""
     from .. import report
     from ..receiver import run_receiver
     from .console import Progress, events_table
@@ -191,7 +191,7 @@ def process(rec, settings, out, events_path=None):
     if result.num_samples < rec.num_samples:
         print(f"coherer: note: the last {rec.num_samples - result.num_samples} sample(s), less than "
               f"one {settings.window}-sample detector window, were not processed", file=sys.stderr)
-    out.write(events_table(result.events, rec.center_freq_hz) + "\n")
+    out.write(events_table(result.events, rec.center_freq_hz, table_limit) + "\n")
     out.write(summary_line(result) + "\n")
     if events_path:
         report.write_json(events_path, result.events)

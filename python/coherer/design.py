@@ -570,33 +570,32 @@ class StepMetrics:
     settling_time_s: float   #: from then on within SETTLING_BAND of the final value
 
 
-def _first_crossing(y, level):
-    """Fractional sample index where ``y`` first reaches ``level`` (linear interpolation), or nan."""
+def _first_crossing(t, y, level):
+    """Time where ``y`` first reaches ``level`` (linear interpolation between samples), or nan."""
     above = np.nonzero(y >= level)[0]
     if above.size == 0:
         return np.nan
     i = int(above[0])
     if i == 0:
-        return 0.0
-    return i - 1 + (level - y[i - 1]) / (y[i] - y[i - 1])
+        return float(t[0])
+    return float(t[i - 1] + (t[i] - t[i - 1]) * (level - y[i - 1]) / (y[i] - y[i - 1]))
 
 
-def _settling_index(y, final, band):
-    """First sample index from which ``|y - final| <= band`` holds to the end, or nan."""
+def _settling_time(t, y, final, band):
+    """First time from which ``|y - final| <= band`` holds to the end of ``t``, or nan."""
     outside = np.nonzero(np.abs(y - final) > band)[0]
     if outside.size == 0:
-        return 0.0
+        return float(t[0])
     if outside[-1] == len(y) - 1:
         return np.nan
-    return float(outside[-1] + 1)
+    return float(t[outside[-1] + 1])
 
 
-def step_metrics(y, final, sample_rate):
-    """Rise time, overshoot and settling time of a step response ``y`` that tends to ``final``."""
-    rise = _first_crossing(y, 0.9 * final) - _first_crossing(y, 0.1 * final)
+def step_metrics(t, y, final):
+    """Rise time, overshoot and settling time of a step response ``y(t)`` that tends to ``final``."""
+    rise = _first_crossing(t, y, 0.9 * final) - _first_crossing(t, y, 0.1 * final)
     overshoot = max(0.0, 100.0 * (float(np.max(y)) - final) / final)
-    settle = _settling_index(y, final, SETTLING_BAND * abs(final))
-    return StepMetrics(rise / sample_rate, overshoot, settle / sample_rate)
+    return StepMetrics(rise, overshoot, _settling_time(t, y, final, SETTLING_BAND * abs(final)))
 
 
 @dataclass(frozen=True, eq=False)
@@ -652,50 +651,65 @@ def _free_response(d_step, w0, points):
     return out
 
 
+#: The first segment of the response grid spans this many 1/(B_L T) samples at full resolution
+#: (a second, coarser segment covers the rest of a slow loop's window).
+FAST_WINDOW_BT = 40.0
+
+
+def _response_grid(n, bt, max_points):
+    """(stride, points) of the grid segments covering ``n`` samples."""
+    n_fast = min(n, int(np.ceil(FAST_WINDOW_BT / bt)))
+    segments = []
+    for length in ((n_fast, n) if n_fast < n else (n,)):
+        stride = max(1, -(-length // max_points))
+        segments.append((stride, -(-length // stride)))
+    return segments
+
+
 def step_responses(design, n_samples=None, max_points=RESPONSE_POINTS):
     """Phase-step and 1 Hz frequency-step responses of the linearised discrete loop with the
     design's ``g_gains``, over ``n_samples`` samples (default :func:`response_length`).
 
-    Exact at the returned samples (every ``stride``-th one, at most ``max_points``): the loop is
-    advanced by ``(I + D)^stride`` in delta form, so very narrow loops cost no more than wide ones
-    and keep full precision (the polynomial form of :func:`closed_loop` stops resolving ``g K3``
-    below B_L T ~ 1e-4). Agrees with ``scipy.signal.lfilter`` on :func:`closed_loop` where that is
-    well conditioned.
+    Exact at the returned samples: every ``stride``-th sample, at most ``max_points`` over the
+    first ``FAST_WINDOW_BT / (B_L T)`` samples and as many again over the whole window. The loop
+    is advanced by ``(I + D)^stride`` in delta form, so very narrow loops cost no more than wide
+    ones and keep full precision (the polynomial form of :func:`closed_loop` stops resolving
+    ``g K3`` below B_L T ~ 1e-4). Agrees with ``scipy.signal.lfilter`` on :func:`closed_loop`
+    where that is well conditioned.
     """
     n = response_length(design) if n_samples is None else int(n_samples)
-    stride = max(1, -(-n // max_points))
-    points = -(-n // stride)
     fs = design.sample_rate
     d = _error_state_matrix(design.g_gains)
-    d_step = _delta_power(d, stride)
     order = d.shape[0]
-    # phase step: z0 = [1, 0, 0] decays to 0
-    w0 = np.zeros(order)
-    w0[0] = 1.0
-    phase_state = _free_response(d_step, w0, points)
-    # 1 Hz frequency step f = 2 pi / fs rad/sample from z = 0; fixed point: phi = f / gK1 (order 1),
-    # else phi = 0 with acc1 = f
-    f = 2.0 * pi / fs
-    fixed = np.zeros(order)
-    if order == 1:
+    f = 2.0 * pi / fs                          # 1 Hz frequency step, rad/sample
+    phase_start = np.zeros(order)              # phase step: z0 = [1, 0, 0] decays to 0
+    phase_start[0] = 1.0
+    fixed = np.zeros(order)                    # frequency step from z = 0 to the fixed point:
+    if order == 1:                             # phi = f / gK1 (order 1), else phi = 0, acc1 = f
         fixed[0] = f / design.g_gains[0]
     else:
         fixed[1] = f
-    freq_state = fixed + _free_response(d_step, -fixed, points)
-    g_all = sum(design.g_gains)
-    phase = 1.0 - phase_state[:, 0]                           # theta^ per unit phase step
-    error = freq_state[:, 0]                                  # phi, rad per Hz of step
-    nco = (g_all * error + freq_state[:, 1:].sum(axis=1)) / f   # NCO step v[n] per unit frequency step
-    steps = stride * np.arange(points)
+    index, phase_rows, freq_rows = [], [], []
+    for stride, points in _response_grid(n, design.actual_bt, max_points):
+        d_step = _delta_power(d, stride)
+        index.append(stride * np.arange(points))
+        phase_rows.append(_free_response(d_step, phase_start, points))
+        freq_rows.append(fixed + _free_response(d_step, -fixed, points))
+    index, first = np.unique(np.concatenate(index), return_index=True)
+    phase_state = np.concatenate(phase_rows)[first]
+    freq_state = np.concatenate(freq_rows)[first]
+    t = index / fs
+    phase = 1.0 - phase_state[:, 0]                                  # theta^ per unit phase step
+    error = freq_state[:, 0]                                         # phi, rad per Hz of step
+    nco = (sum(design.g_gains) * error + freq_state[:, 1:].sum(axis=1)) / f   # NCO step v[n] per unit step
     final_error = design.frequency_step_error(1.0)
     i_peak = int(np.argmax(np.abs(error)))
     peak = float(abs(error[i_peak]))
-    grid_fs = fs / stride                                     # metrics are computed on the returned grid
     return StepResponses(
-        time_s=steps / fs, phase_step=phase, freq_step_nco=nco, freq_step_error=error,
-        phase_metrics=step_metrics(phase, 1.0, grid_fs), freq_metrics=step_metrics(nco, 1.0, grid_fs),
-        peak_error_rad_per_hz=peak, peak_error_time_s=steps[i_peak] / fs, error_final_rad_per_hz=final_error,
-        error_settling_time_s=_settling_index(error, final_error, SETTLING_BAND * peak) / grid_fs)
+        time_s=t, phase_step=phase, freq_step_nco=nco, freq_step_error=error,
+        phase_metrics=step_metrics(t, phase, 1.0), freq_metrics=step_metrics(t, nco, 1.0),
+        peak_error_rad_per_hz=peak, peak_error_time_s=float(t[i_peak]), error_final_rad_per_hz=final_error,
+        error_settling_time_s=_settling_time(t, error, final_error, SETTLING_BAND * peak))
 
 
 def closed_loop_magnitude_db(design, freqs_hz):
@@ -794,7 +808,7 @@ __all__ = [
     "lock_in_range_hz", "pull_out_hz", "pull_in_time_s", "Acquisition", "assess_acquisition",
     "SECOND_ORDER_SLIP_SHIFT_DB", "loop_snr", "slip_time_bt_first_order", "mean_time_between_slips_s",
     "tikhonov_phase_variance", "nonlinear_phase_error_variance",
-    "SETTLING_BAND", "RESPONSE_TIME_CONSTANTS", "RESPONSE_POINTS", "response_length", "StepMetrics",
+    "SETTLING_BAND", "RESPONSE_TIME_CONSTANTS", "RESPONSE_POINTS", "FAST_WINDOW_BT", "response_length", "StepMetrics",
     "step_metrics", "StepResponses", "step_responses", "closed_loop_magnitude_db", "closed_loop_peaking_db",
     "closed_loop_3db_hz", "jerk_phase_error", "total_phase_error_variance", "suggest_noise_bw",
 ]

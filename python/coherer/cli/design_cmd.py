@@ -308,18 +308,20 @@ def write_plot(path, d, steps, r):
     import matplotlib.pyplot as plt
     import numpy as np
 
-    t_end = np.nanmax([r["phase_step_settling_time_s"], r["freq_step_error_settling_time_s"],
-                       10.0 / (r["actual_noise_bw_hz"])])
-    keep = steps.time_s <= 1.5 * t_end
-    keep[:2] = True
-    t = steps.time_s[keep]
-    scale, unit = (1e3, "ms") if t[-1] < 2.0 else (1.0, "s")
-    t = t * scale
+    def window(settling_s):
+        """Samples of the returned grid up to 1.5 x the settling time (10 / B_L if not settled), and units."""
+        t_end = 1.5 * (settling_s if math.isfinite(settling_s) else 10.0 / r["actual_noise_bw_hz"])
+        keep = steps.time_s <= t_end
+        keep[:2] = True
+        scale, unit = (1e3, "ms") if t_end < 2.0 else (1.0, "s")
+        return keep, steps.time_s[keep] * scale, unit
+
     title = (f"order {d.loop_order}, M = {d.power}, B_L = {r['actual_noise_bw_hz']:.4g} Hz, "
              f"fs = {d.sample_rate:g} samples/s" + (f", damping {d.damping:g}" if d.loop_order > 1 else ""))
     fig, axes = plt.subplots(2, 2, figsize=(12, 8))
     fig.suptitle(f"coherer design: {title}")
 
+    keep, t, unit = window(r["phase_step_settling_time_s"])
     ax = axes[0, 0]
     ax.plot(t, steps.phase_step[keep], label="phase estimate / step")
     ax.axhline(1.0, color="k", lw=0.8, ls=":", label="step")
@@ -329,6 +331,7 @@ def write_plot(path, d, steps, r):
            xlabel=f"time ({unit})", ylabel="phase estimate / phase step")
     ax.legend(loc="lower right")
 
+    keep, t, unit = window(r["freq_step_nco_settling_time_s"])
     ax = axes[0, 1]
     ax.plot(t, steps.freq_step_nco[keep], label="NCO frequency / step")
     ax.axhline(1.0, color="k", lw=0.8, ls=":", label="step")
@@ -336,6 +339,7 @@ def write_plot(path, d, steps, r):
            xlabel=f"time ({unit})", ylabel="NCO frequency / frequency step")
     ax.legend(loc="lower right")
 
+    keep, t, unit = window(r["freq_step_error_settling_time_s"])
     ax = axes[1, 0]
     offset = r.get("offset_hz")
     if offset:
@@ -344,14 +348,14 @@ def write_plot(path, d, steps, r):
     else:
         err = np.degrees(steps.freq_step_error[keep])
         label, ylabel = "phase error per Hz of step", "phase error (deg per Hz)"
-    if d.power * r["freq_step_peak_error_rad_per_hz"] * abs(offset or 1.0) > math.pi / 2:
-        label += " (M x peak > 90 deg: the real loop slips)"
+    peak_deg = math.degrees(r["freq_step_peak_error_rad_per_hz"] * (offset or 1.0))
+    panel_title = f"Frequency step: phase error (linear loop), peak {peak_deg:.3g} deg"
+    if offset and d.power * peak_deg > 90.0:
+        panel_title += f"\nM x peak = {d.power * peak_deg:.3g} deg > 90 deg: the real loop slips cycles"
     ax.plot(t, err, color="C3", label=label)
     ax.axhline(0.0, color="k", lw=0.8)
-    ax.set(title=f"Frequency step: phase error (linear loop), peak "
-                 f"{math.degrees(r['freq_step_peak_error_rad_per_hz'] * (offset or 1.0)):.3g} deg",
-           xlabel=f"time ({unit})", ylabel=ylabel)
-    ax.legend(loc="best")
+    ax.set(title=panel_title, xlabel=f"time ({unit})", ylabel=ylabel)
+    ax.legend(loc="upper right")
 
     ax = axes[1, 1]
     freqs = np.geomspace(r["actual_noise_bw_hz"] / 100.0, d.sample_rate / 2.0, 1000)

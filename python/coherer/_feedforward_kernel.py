@@ -69,6 +69,9 @@ STATE_SIZE = 14
 #: weighting): |x|^M <= 1e294, so a sum of up to 65536 terms stays finite.
 POWER_WEIGHT_EXPONENT_CAP = 294.0
 SATURATE = 2 ** 52
+#: Samples per pass: a call is processed in pieces of at most this many samples,
+#: so the scratch arrays stay small and in cache whatever the call size.
+PIECE = 4096
 TWO_PI = 2.0 * np.pi
 
 
@@ -107,17 +110,15 @@ def power_weight_cap(power):
 
 
 @njit(cache=True, error_model="numpy")
-def _mth_power_terms(x, power, weighting, tr, ti, valid):
-    """Terms t = F(|x|) e^{j M arg x} of every sample (0 for a gap), element-wise.
+def _mth_power_terms(x, power, weighting, tr, ti, valid, br, bi, mag):
+    """Terms t = F(|x|) e^{j M arg x} of every sample (0 for a gap), element-wise
+    (``br``, ``bi``, ``mag``: scratch of the same length).
 
     Written as separate simple loops over the arrays so that they vectorise.
     """
     n_items = x.shape[0]
     cap = 10.0 ** (POWER_WEIGHT_EXPONENT_CAP / power)
     cap2 = cap * cap
-    br = np.empty(n_items)
-    bi = np.empty(n_items)
-    mag = np.empty(n_items)
     for n in range(n_items):
         xr = np.float64(x[n].real)
         xi = np.float64(x[n].imag)
@@ -382,24 +383,30 @@ def feedforward(x, out, ref, freq, phase, resets, state, terms, suffix, delay_x,
     Returns the number of samples processed.
     """
     n_items = x.shape[0]
-
-    # 1. terms (element-wise) --------------------------------------------------------
-    tr = np.empty(n_items)
-    ti = np.empty(n_items)
-    valid = np.empty(n_items, np.bool_)
-    _mth_power_terms(x, power, weighting, tr, ti, valid)
-
-    # 2. sliding sums (serial) ---------------------------------------------------------
-    sr = np.empty(n_items)
-    si = np.empty(n_items)
-    _sliding_sums(tr, ti, resets, state, terms, suffix, window, rot_re, rot_im, sr, si)
-
-    # 3. principal roots (element-wise) ------------------------------------------------------
-    rr = np.empty(n_items)
-    ri = np.empty(n_items)
-    _principal_roots(sr, si, power, rr, ri)
-
-    # 4. unwrapping, delay line and outputs (serial) -------------------------------------------
-    _unwrap_and_output(x, valid, sr, si, rr, ri, out, ref, freq, phase, resets, state, delay_x,
-                       delay_p, delay_f, history_p, power, window, roots_re, roots_im)
+    size = min(n_items, PIECE)
+    scratch = np.empty((9, size))
+    tr, ti, sr, si, rr, ri, br, bi, mag = (scratch[0], scratch[1], scratch[2], scratch[3], scratch[4],
+                                           scratch[5], scratch[6], scratch[7], scratch[8])
+    valid = np.empty(size, np.bool_)
+    first_reset = 0
+    for a in range(0, n_items, PIECE):
+        b = min(a + PIECE, n_items)
+        m = b - a
+        last_reset = first_reset
+        while last_reset < resets.shape[0] and resets[last_reset] < b:
+            last_reset += 1
+        local_resets = resets[first_reset:last_reset] - a
+        first_reset = last_reset
+        xs = x[a:b]
+        # 1. terms (element-wise)
+        _mth_power_terms(xs, power, weighting, tr[:m], ti[:m], valid[:m], br[:m], bi[:m], mag[:m])
+        # 2. sliding sums (serial)
+        _sliding_sums(tr[:m], ti[:m], local_resets, state, terms, suffix, window, rot_re, rot_im,
+                      sr[:m], si[:m])
+        # 3. unit phasors and principal roots (element-wise)
+        _principal_roots(sr[:m], si[:m], power, rr[:m], ri[:m])
+        # 4. unwrapping, delay line and outputs (serial)
+        _unwrap_and_output(xs, valid[:m], sr[:m], si[:m], rr[:m], ri[:m], out[a:b], ref[a:b],
+                           freq[a:b], phase[a:b], local_resets, state, delay_x, delay_p, delay_f,
+                           history_p, power, window, roots_re, roots_im)
     return n_items

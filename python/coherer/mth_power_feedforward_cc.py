@@ -14,6 +14,12 @@ from .mth_power_loop_cc import default_point_angle
 #: Largest accepted window, samples.
 MAX_WINDOW = 65536
 
+#: Items per work() call the block asks GNU Radio for. A Python block pays a fixed
+#: cost per call (tens of microseconds), so it declares this much history (GNU Radio
+#: then gives the upstream buffer room for about twice as many items; the history
+#: itself is not used) and an output buffer of twice this size.
+CALL_ITEMS = 16384
+
 #: Names accepted for ``weighting`` and the kernel code of each.
 WEIGHTINGS = {
     "power": K.WEIGHT_POWER,          # F(|z|) = |z|^M: the sum of z^M
@@ -147,6 +153,11 @@ class mth_power_feedforward_cc(gr.sync_block):
                                out_sig=out_sig)
         # upstream tags (and the reset tags this block reads) are moved by the delay
         self.declare_sample_delay(self._delay)
+        self.set_history(CALL_ITEMS)
+        level = self.logger.get_string_level()
+        self.logger.set_level("warn")          # GNU Radio logs this deliberate setting at info level
+        self.set_min_output_buffer(2 * CALL_ITEMS)
+        self.logger.set_level(level)
 
         rot = np.exp(-1j * power * self._point_angle)
         roots = np.exp(2j * pi * np.arange(power) / power)
@@ -204,7 +215,7 @@ class mth_power_feedforward_cc(gr.sync_block):
 
     # --- streaming -------------------------------------------------------------------
     def work(self, input_items, output_items):
-        x = input_items[0]
+        x = input_items[0][CALL_ITEMS - 1:]       # skip the (unused) history
         n = len(x)
         resets = self._no_resets
         if self._reset_key_pmt is not None:

@@ -93,7 +93,7 @@ def test_slip_worked_example_and_pull_in(coherer):
     r = run_json(coherer, "--sample-rate", 1e6, "--power", 1, "--noise-bw", 100, "--offset", 50)
     assert r["pull_in_time_rice_s"] == pytest.approx(0.010, rel=1e-9)
     assert r["lock_time_s"] - r["pull_in_time_s"] == pytest.approx(0.013, rel=1e-9)
-    # Gardner = 4.16 df^2 / B_L^3 at zeta 0.707 (REFERENCES 2.2), i.e. 10.4 ms here (printed 3 digits)
+    # Gardner (from memory) = 4.16 df^2 / B_L^3 at zeta 0.707 (REFERENCES 2.2), i.e. 10.4 ms here (printed 3 digits)
     assert r["pull_in_time_s"] == pytest.approx(4.16 * 50 ** 2 / 100 ** 3, rel=0.005)
     assert r["acquisition_needed"] is False
 

@@ -17,12 +17,17 @@ Per input sample i (W = window, D = W // 2, M = power, pa = point_angle)::
     y      = x_{i-D} e^{-j theta_i}                   output i (delay D samples)
 
 so output i is the input sample at the centre of the window that estimated
-its phase (exactly for odd W; half a sample early for even W).
+its phase (exactly for odd W; for even W the window's centre lies half a
+sample after it).
 
 Weightings F: ``WEIGHT_POWER`` |x|^M (F(|x|) e^{jM arg x} = x^M), ``WEIGHT_MAGNITUDE``
 |x|, ``WEIGHT_PHASE`` 1 (phase only).
 
 Implementation notes
+    * Each call is processed in pieces of up to PIECE samples, each in four
+      passes: terms (element-wise), sliding sums (serial), unit phasors and
+      principal roots (element-wise), unwrapping / delay line / outputs
+      (serial). The element-wise passes are plain loops that LLVM can vectorise.
     * Sliding sum without cancellation: the stream since the reset is cut
       into blocks of W samples. The window sum is the suffix sum of the
       previous block (stored when it completed, reverse cumulative sum) plus

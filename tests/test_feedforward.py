@@ -54,6 +54,11 @@ def mcrb(length, esn0):
     return 1.0 / (2.0 * length * esn0)
 
 
+def db(value_db):
+    """Linear ratio of a value in dB."""
+    return 10.0 ** (value_db / 10.0)
+
+
 def wrap(a, period):
     """Wrap angles into [-period/2, period/2)."""
     return a - period * np.floor(a / period + 0.5)
@@ -62,7 +67,7 @@ def wrap(a, period):
 def reference_estimator(x, power, window, weighting, point_angle, resets=()):
     """Direct numpy/Python implementation of the block's definition (slow, obviously correct).
 
-    Viterbi & Viterbi 1983: theta = arg(sum F(|z|) e^{jM arg z}) / M over the window
+    Viterbi & Viterbi 1983 (REFERENCES 6.1; notation from memory there): theta = arg(sum F(|z|) e^{jM arg z}) / M over the window
     [max(r, i-W+1), i] (r = last reset), unwrapped with theta_i = theta_{i-1} +
     wrap_{2pi/M}(phi_i - theta_{i-1}); sample c = i - W//2 is corrected with theta_i,
     or with theta_{r-1} when a reset r falls in (c, c + W//2].
@@ -183,7 +188,7 @@ def test_matches_direct_implementation(tb, power, window):
     resets = [0, 50, 51, 900, 2000, 2003]
     for weighting in ("power", "magnitude", "phase"):
         x = psk(rng, n_items, power, point_angle) * np.exp(1j * (0.5 + 2 * pi * 1e-3 * np.arange(n_items)))
-        x = (x + noise(rng, n_items, 10 ** 0.8)).astype(np.complex64)
+        x = (x + noise(rng, n_items, db(8))).astype(np.complex64)
         x[100:105] = 0
         x[700], x[701], x[702] = np.nan, np.inf, complex(1.0, -np.inf)
         x[1500:1540] = 0                       # longer than every window: estimate held
@@ -313,7 +318,7 @@ def test_variance_matches_viterbi_viterbi(tb, weighting, power, length, esn0_db,
     (1 - c_2M)/(2 L M^2 c_M^2) (F = 1) within +-10 % at the REFERENCES 6.1 table points
     (Viterbi & Viterbi 1983; formulas derived in REFERENCES 6.1); ratio to the MCRB
     (D'Andrea, Mengali & Reggiannini 1994) reported and, for F = |z|^M, compared with the table."""
-    esn0 = 10 ** (esn0_db / 10)
+    esn0 = db(esn0_db)
     rng = np.random.default_rng(1000 * power + length + esn0_db + (weighting == "phase"))
     theta0 = rng.uniform(-pi, pi)
     n_items = VV_BLOCKS * length + length
@@ -362,7 +367,7 @@ def test_bursts_with_reset_tags(tb, power, window, esn0_db):
     """300 bursts of 200-2000 symbols, random phase each, separated by noise, a reset tag
     on each burst's first sample: every burst's phase error (mod 2 pi/M) is within 3 sigma
     (rms) of the small-error prediction from its first window on, with no transient."""
-    esn0 = 10 ** (esn0_db / 10)
+    esn0 = db(esn0_db)
     weighting = default_weighting(power)
     pa = default_point_angle(power)
     d = window // 2
@@ -441,10 +446,11 @@ def test_frequency_offset_at_the_stated_limit_no_slips(tb):
     gain = np.sin(pi * f * power * window) / (window * np.sin(pi * f * power))
     sigma = np.sqrt(var_phase_weighting(power, window, esn0)) / gain
     assert np.max(np.abs(residual)) < 6 * sigma
-    # mean frequency: the sum of lag-W phase differences telescopes, so its error is at most
-    # 2 x (6 sigma) / (number of estimates); in cycles/sample, divided by 2 pi.
-    f_hat = np.mean(freq_hz) / FS
-    assert abs(f_hat - f) < 2 * 6 * sigma / len(freq_hz) / (2 * pi) * window + 1e-9
+    # mean frequency: the lag-W phase differences telescope, so the mean of N of them errs by
+    # at most (W + W) x 6 sigma / (N W) rad/sample; in cycles/sample divide by 2 pi. The
+    # estimate is unbiased for an odd window (the 1e-10 allows for float32 outputs).
+    f_hat = np.mean(freq_hz.astype(np.float64)) / FS
+    assert abs(f_hat - f) < 12 * sigma / len(freq_hz) / (2 * pi) + 1e-10
 
 
 # --- robustness ----------------------------------------------------------------------------------
@@ -457,7 +463,7 @@ def test_nan_inf_zero_and_huge_samples_do_not_poison_state(tb, weighting):
     power, window = 4, 33
     rng = np.random.default_rng(21)
     n_items = 6000
-    clean = (psk(rng, n_items, power, pi / 4) * np.exp(0.3j) + noise(rng, n_items, 10 ** 1.5)).astype(np.complex64)
+    clean = (psk(rng, n_items, power, pi / 4) * np.exp(0.3j) + noise(rng, n_items, db(15))).astype(np.complex64)
     bad = clean.copy()
     bad[500], bad[501], bad[502] = np.nan, np.inf, complex(-np.inf, 1.0)
     bad[1000:1100] = 0                              # longer than the window
@@ -489,7 +495,7 @@ def test_huge_amplitude_stream(tb, power, weighting):
     capping (|z|^8 at 1e30, |z|) the estimate is scale invariant, as the definition is."""
     rng = np.random.default_rng(5)
     n_items = 3000
-    x = psk(rng, n_items, power, default_point_angle(power)) * np.exp(0.05j) + noise(rng, n_items, 10 ** 2.5)
+    x = psk(rng, n_items, power, default_point_angle(power)) * np.exp(0.05j) + noise(rng, n_items, db(25))
     ref_unit = stream_ref(gr.top_block(), x.astype(np.complex64),
                           mth_power_feedforward_cc(FS, power, 16, weighting=weighting, diagnostics=True))
     blk = mth_power_feedforward_cc(FS, power, 16, weighting=weighting, diagnostics=True)
@@ -547,12 +553,19 @@ def test_defaults_match_the_loops():
         assert blk.weighting() == default_weighting(power)
         assert blk.delay() == 8 and blk.window() == 16
     assert mth_power_feedforward_cc(FS, 4, 16).point_angle() == pytest.approx(pi / 4, rel=1e-15)
-    # the default is the better one at 10 dB (formulas of REFERENCES 6.1)
-    for power in (2, 4, 8):
-        better = "power" if var_power_weighting(power, 1, 10.0) <= var_phase_weighting(power, 1, 10.0) * 1.001 \
-            else "phase"
-        assert default_weighting(power) == better or power == 2   # M = 2: equal within 0.1 %
-    assert mth_power_feedforward_cc(FS, 4, 16, reset_tag_key="").phase() == 0.0
+    # The default weighting is the lower-variance one (small-error formulas, REFERENCES 6.1):
+    # M = 1: the sum of z meets the MCRB (D'Andrea, Mengali & Reggiannini; from memory) exactly;
+    assert default_weighting(1) == "power"
+    assert var_power_weighting(1, 100, 10.0) == pytest.approx(mcrb(100, 10.0), rel=1e-12)
+    assert var_phase_weighting(1, 100, 10.0) > mcrb(100, 10.0)
+    # M = 2: |z|^2 is better at 3 dB (and equal to 0.1 % from 6 dB up);
+    assert default_weighting(2) == "power"
+    assert var_power_weighting(2, 1, db(3)) < var_phase_weighting(2, 1, db(3))
+    # M = 4, 8: phase only is better at 10 dB and 15 dB.
+    for power in (4, 8):
+        assert default_weighting(power) == "phase"
+        for snr in (db(10), db(15)):
+            assert var_phase_weighting(power, 1, snr) < var_power_weighting(power, 1, snr)
 
 
 def test_qpsk_points_on_the_diagonals(tb):

@@ -110,8 +110,8 @@ def test_demo_phase_error_rms_agrees_with_theory(demo, scenario):
         assert abs(esn0["measured"] - st.esn0_db) <= 0.5, esn0
 
 
-@pytest.mark.xfail(reason="loop slip tracker keeps a stale frequency after relock: periodic false "
-                          "+1 slips (see SLIP_TRACKER_XFAIL in test_cli_run.py)", strict=False)
+@pytest.mark.xfail(reason="loop slip tracker declares false slips (periodic +1) after acquisition "
+                          "or a frequency change (see SLIP_TRACKER_XFAIL in test_cli_run.py)", strict=False)
 def test_demo_slips_agree_with_truth(demo, scenario):
     """The loop must declare the slips it actually made at the oscillator jump (the change
     of the true phase error in units of 2 pi/M, measured by the demo from the loop's
@@ -122,7 +122,7 @@ def test_demo_slips_agree_with_truth(demo, scenario):
     _, out = demo
     summary = json.loads((out / "report" / "summary.json").read_text())
     jump, = _check(summary, "cycle slips at the")
-    assert jump["truth"] is not None and jump["truth"] < 0      # the carrier ran ahead: NCO behind
+    assert jump["truth"] is not None                            # measured from the reference output
     assert jump["measured"] == jump["truth"], jump
     elsewhere, = _check(summary, "cycle-slip events elsewhere")
     assert elsewhere["measured"] == 0, elsewhere

@@ -288,15 +288,27 @@ def test_annotate_keeps_everything_and_is_valid(tmp_path):
 
 def test_interrupted_run_leaves_metadata_untouched(tmp_path):
     """SIGINT while the flowgraph runs: exit 130, metadata byte for byte as before, no
-    temporary file left. The recording is long enough (noise, 8 M samples) that the run
-    is still going when the signal arrives; the exit status proves it was interrupted."""
+    temporary file left. The signal is sent once the flowgraph has opened the data; the recording
+    (noise, 8 M samples) takes several seconds, and the exit status proves the run was
+    interrupted rather than finished."""
     rng = np.random.default_rng(17)
     data = rng.integers(0, 256, 16_000_000, dtype=np.uint8).tobytes()
     meta = write_sigmf(tmp_path, "long", data, "cu8", meta=json.dumps(
         dict(RICH_META, **{"global": dict(RICH_META["global"], **{"core:datatype": "cu8"})})))
     before = meta.read_bytes()
     proc = popen("run", meta, *LOOP, "--annotate")
-    time.sleep(4.0)
+    # wait until the flowgraph is built: its file source holds the data file open
+    data_file = str(tmp_path / "long.sigmf-data")
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline and proc.poll() is None:
+        fds = f"/proc/{proc.pid}/fd"
+        try:
+            if any(os.readlink(os.path.join(fds, fd)) == data_file for fd in os.listdir(fds)):
+                break
+        except OSError:       # a descriptor closed while we looked
+            pass
+        time.sleep(0.05)
+    time.sleep(0.5)
     proc.send_signal(signal.SIGINT)
     out, err = proc.communicate(timeout=120)
     assert proc.returncode == 130, err

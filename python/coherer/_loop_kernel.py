@@ -20,9 +20,9 @@ averaged moments of |x|^2 and |x|^4, floored so that the gain boost
 ``(M2/S)^(M/2)`` stays bounded. The loop stays open (the NCO coasts) for the
 first few hundred samples, until the moments have settled. The detector
 output is clipped so that one sample never moves the NCO phase by more than
-pi/(2M) (a quarter of the M-domain ambiguity). The clip sits at about
-0.83 sqrt(rho_psi / (B_L T)) standard deviations of the detector noise
-(rho_psi the loop SNR of REFERENCES 5): more than 5 for rho_psi >= 2 and
+pi/M (half the M-domain ambiguity). The clip sits at about
+1.7 sqrt(rho_psi / (B_L T)) standard deviations of the detector noise
+(rho_psi the loop SNR of REFERENCES 5): more than 10 for rho_psi >= 2 and
 B_L T <= 0.05, so it only acts on start-up transients and outliers. Normalising
 by the signal part (not total power) keeps the detector gain at exactly M and
 hence the loop noise bandwidth at its design value for any amplitude and SNR.
@@ -31,7 +31,7 @@ Robustness: a non-finite or exactly zero sample is a gap; the NCO coasts
 (theta^ += acc1), nothing else changes, and the output is 0. A sample whose
 power exceeds ``LIMIT * M2`` is limited to that power (phase kept) before it
 reaches the moments and the detector, so one huge spike cannot upset the
-loop gain; a lasting level step of 20 dB or more (seen by a fast average over
+loop gain; a lasting level step of 6 dB or more (seen by a fast average over
 64 samples) rescales the moments at once, so the gain recovers quickly after a
 fade or a gain change.
 
@@ -47,9 +47,13 @@ B_L, no steady error to a frequency ramp) follows the unwrapped NCO phase;
 its residual ``r`` carries the loop's jitter and, at a slip, a step of
 2*pi/M. When |r| exceeds 3/4 of 2*pi/M (the error has been carried most of
 the way to the neighbouring stable point) the reference jumps by 2*pi/M with
-it, and, while locked, a slip is declared. Noise excursions that return
-before that are not counted. The residual is re-centred when lock is
-declared; the block resets the tracker when it re-steers the NCO. Sign: +1 means the NCO phase advanced by 2*pi/M
+it and a slip is declared. Noise excursions that return before that are not
+counted. The tracker runs only while locked, with a wider bandwidth for its
+first REF_SETTLE_WINDOWS lock windows so that it settles on the NCO's
+frequency and rate quickly; when lock is declared it starts
+at zero residual with the NCO's mean frequency over the last lock window and
+the frequency rate (the loop's own rate register in a 3rd-order loop, else
+the change of the mean frequency between the last two windows). Sign: +1 means the NCO phase advanced by 2*pi/M
 relative to the carrier (the output constellation turned by -2*pi/M).
 No transcendental function is needed: the tracker runs on the NCO steps.
 """
@@ -76,7 +80,10 @@ S_REF_F = 14     # reference frequency, rad/sample
 S_REF_A = 15     # reference frequency rate, rad/sample^2
 S_SLIPS = 16     # signed slips declared so far
 S_FAST_M2 = 17   # fast exponential average of |x|^2 (level-step detector)
-STATE_SIZE = 18
+S_WIN_STEPS = 18 # sum of NCO steps in this lock window, rad
+S_PREV_STEP = 19 # mean NCO step of the previous window, rad/sample
+S_REF_AGE = 20   # lock windows since the slip reference started
+STATE_SIZE = 21
 
 # params[] layout ------------------------------------------------------------------
 P_K1 = 0
@@ -96,14 +103,18 @@ P_REF_G2 = 13
 P_REF_G3 = 14
 P_SIG2_FLOOR = 15    # floor of (S/M2)^2: caps the detector-gain boost at low SNR
 P_START_MW = 16      # the loop closes once the moment weight reaches this (start-up)
-P_E_MAX = 17         # clip of the normalised detector output: K1 e_max = pi / (2 M)
-PARAMS_SIZE = 18
+P_E_MAX = 17         # clip of the normalised detector output: K1 e_max = pi / M
+P_REF_FAST_G1 = 18   # slip reference gains for its first REF_SETTLE_WINDOWS windows
+P_REF_FAST_G2 = 19
+P_REF_FAST_G3 = 20
+PARAMS_SIZE = 21
 
 LIMIT = 100.0                      # sample power limit relative to M2 (+20 dB)
 FAST_ALPHA = 1.0 / 64.0            # averaging coefficient of the level-step detector
-LEVEL_STEP = 100.0                 # a level change of 20 dB rescales the moments
+LEVEL_STEP = 4.0                   # a level change of 6 dB rescales the moments
 TWO_PI = 2.0 * np.pi
 SLIP_DEPARTURE = 0.75              # fraction of 2*pi/M that declares a slip
+REF_SETTLE_WINDOWS = 8             # windows the slip reference runs wide after lock
 
 
 def new_state():
@@ -148,9 +159,12 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     lock_window = params[P_LOCK_WINDOW]
     z_on = params[P_LOCK_Z_ON]
     z_off = params[P_LOCK_Z_OFF]
-    g1 = params[P_REF_G1]
-    g2 = params[P_REF_G2]
-    g3 = params[P_REF_G3]
+    slow_g1 = params[P_REF_G1]
+    slow_g2 = params[P_REF_G2]
+    slow_g3 = params[P_REF_G3]
+    fast_g1 = params[P_REF_FAST_G1]
+    fast_g2 = params[P_REF_FAST_G2]
+    fast_g3 = params[P_REF_FAST_G3]
     slip_step = TWO_PI / power
     slip_threshold = SLIP_DEPARTURE * slip_step
     inv_power = 1.0 / power
@@ -177,6 +191,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     ref_a = state[S_REF_A]
     slips = state[S_SLIPS]
     fast_m2 = state[S_FAST_M2]
+    win_steps = state[S_WIN_STEPS]
+    prev_step = state[S_PREV_STEP]
+    ref_age = state[S_REF_AGE]
 
     want_ref = ref.shape[0] > 0
     want_freq = freq.shape[0] > 0
@@ -263,15 +280,20 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
         if phase >= np.pi or phase < -np.pi:
             phase -= TWO_PI * np.floor((phase + np.pi) / TWO_PI)
 
-        # slip tracker: the reference follows the unwrapped NCO phase (this
-        # sample's step); slips are counted only while locked
-        ref_a += g3 * ref_r
-        ref_f += g2 * ref_r + ref_a
-        ref_r += last_step + acc1 - g1 * ref_r - ref_f
-        if ref_r > slip_threshold or ref_r < -slip_threshold:
-            step = 1.0 if ref_r > 0.0 else -1.0
-            ref_r -= step * slip_step
-            if locked > 0.0:
+        # slip tracker (while locked): the reference follows the unwrapped NCO phase
+        nco_step = last_step + acc1
+        win_steps += nco_step
+        if locked > 0.0:
+            if ref_age < REF_SETTLE_WINDOWS:
+                g1, g2, g3 = fast_g1, fast_g2, fast_g3
+            else:
+                g1, g2, g3 = slow_g1, slow_g2, slow_g3
+            ref_a += g3 * ref_r
+            ref_f += g2 * ref_r + ref_a
+            ref_r += nco_step - g1 * ref_r - ref_f
+            if ref_r > slip_threshold or ref_r < -slip_threshold:
+                step = 1.0 if ref_r > 0.0 else -1.0
+                ref_r -= step * slip_step
                 slips += step
                 slip_at[n_slips] = n
                 slip_count[n_slips] = int(step)
@@ -280,14 +302,24 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
         # lock indicator: decide at the end of each window
         lock_pos += 1.0
         if lock_pos >= lock_window:
+            ref_age += 1.0
+            mean_step = win_steps / lock_window
+            slope = (mean_step - prev_step) / lock_window
+            prev_step = mean_step
+            win_steps = 0.0
             if lock_n >= 0.5 * lock_window:
                 metric = lock_sum / lock_n
                 root_n = np.sqrt(lock_n)
                 if locked > 0.0:
                     locked = 1.0 if metric * root_n >= z_off else 0.0
                 elif metric * root_n >= z_on:
+                    # lock declared: the loop sits at a stable point; start the slip
+                    # reference on the NCO's mean frequency and rate over the last windows
                     locked = 1.0
-                    ref_r = 0.0     # the loop is at a stable point now
+                    ref_r = 0.0
+                    ref_f = mean_step + 0.5 * lock_window * slope
+                    ref_a = acc2 if k3 > 0.0 else slope    # a 3rd-order loop knows the rate
+                    ref_age = 0.0
             lock_sum = 0.0
             lock_n = 0.0
             lock_pos = 0.0
@@ -313,4 +345,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_REF_A] = ref_a
     state[S_SLIPS] = slips
     state[S_FAST_M2] = fast_m2
+    state[S_WIN_STEPS] = win_steps
+    state[S_PREV_STEP] = prev_step
+    state[S_REF_AGE] = ref_age
     return n_slips

@@ -15,8 +15,8 @@ from . import acquisition, design, metadata
 
 #: Default averaging length of the signal-power (M2M4) estimator, samples:
 #: at least this many, and at least AVERAGING_PER_BT / (B_L T).
-MIN_AVERAGING = 4096
-AVERAGING_PER_BT = 8.0
+MIN_AVERAGING = 16384
+AVERAGING_PER_BT = 32.0
 #: Detector normalisation limits: the signal fraction S/M2 used is at least
 #: max(MIN_SIGNAL_FRACTION, MAX_GAIN_BOOST^(-2/M)), so the gain boost (M2/S)^(M/2)
 #: never exceeds MAX_GAIN_BOOST; the loop closes after START_SAMPLES samples.
@@ -29,6 +29,8 @@ LOCK_P_FALSE = 1e-6
 UNLOCK_P_LEVEL = 1e-1
 #: Noise bandwidth of the slip tracker's reference, as a fraction of B_L.
 SLIP_REFERENCE_BW = 0.05
+#: ... and while it settles after lock is declared.
+SLIP_REFERENCE_SETTLE_BW = 0.25
 #: Most events remembered by acquisition_log() and lock_log().
 EVENT_LOG = 1000
 
@@ -165,6 +167,8 @@ class mth_power_loop_cc(gr.sync_block):
         p[K.P_LOCK_Z_OFF] = norm.isf(UNLOCK_P_LEVEL) / np.sqrt(2.0)
         p[K.P_REF_G1], p[K.P_REF_G2], p[K.P_REF_G3] = design.textbook_gains(
             3, SLIP_REFERENCE_BW * d.bt, 1.0)
+        p[K.P_REF_FAST_G1], p[K.P_REF_FAST_G2], p[K.P_REF_FAST_G3] = design.textbook_gains(
+            3, SLIP_REFERENCE_SETTLE_BW * d.bt, 1.0)
         s_min = max(MIN_SIGNAL_FRACTION, MAX_GAIN_BOOST ** (-2.0 / self._power))
         p[K.P_SIG2_FLOOR] = s_min * s_min
         p[K.P_START_MW] = 1.0 - (1.0 - p[K.P_ALPHA]) ** START_SAMPLES
@@ -199,6 +203,8 @@ class mth_power_loop_cc(gr.sync_block):
         st[K.S_REF_R] = 0.0
         st[K.S_REF_F] = rad_per_sample
         st[K.S_REF_A] = 0.0
+        st[K.S_WIN_STEPS] = 0.0
+        st[K.S_PREV_STEP] = rad_per_sample
 
     def _steer(self, sample):
         """End of an acquisition block: if unlocked, estimate the offset from z^M and steer."""

@@ -490,3 +490,25 @@ def test_progress_bar_only_on_a_terminal(tmp_path):
     assert b"coherer run [" not in out and out.startswith(b"time (s)")
     piped = coherer("run", meta, *LOOP)
     assert "coherer run [" not in piped.stderr
+
+
+def test_header_and_trailing_bytes_are_skipped(tmp_path):
+    """SigMF non-conforming dataset fields: core:header_bytes (capture) and
+    core:trailing_bytes (global). A 5-byte header is not a multiple of the 4-byte ci16
+    sample, so the samples are streamed from an unaligned byte offset."""
+    x = bpsk(seed=21)
+    data = b"HEAD5" + encode(x, "ci16_le") + b"TAIL!!"
+    meta = {"global": {"core:datatype": "ci16_le", "core:sample_rate": FS, "core:version": "1.2.0",
+                       "core:trailing_bytes": 6},
+            "captures": [{"core:sample_start": 0, "core:frequency": CENTER_HZ, "core:header_bytes": 5}],
+            "annotations": []}
+    path = write_sigmf(tmp_path, "ncd", data, meta=meta)
+    events_path = tmp_path / "ev.json"
+    proc = coherer("run", path, *LOOP, "--events", events_path, "--annotate")
+    assert proc.returncode == 0, proc.stderr
+    assert "warning" not in proc.stderr                         # whole samples exactly
+    (lock_t, unlock_t), = lock_intervals(json.loads(events_path.read_text()))
+    assert ON_S - WINDOW_S <= lock_t <= ON_S + 1.0
+    assert OFF_S - WINDOW_S <= unlock_t <= OFF_S + 2 * WINDOW_S
+    a, = [a for a in json.loads(path.read_text())["annotations"] if a["core:label"] == "carrier locked"]
+    assert abs(a["coherer:freq_hz"] - OFFSET_HZ) <= 1.0      # misaligned bytes would scramble I/Q

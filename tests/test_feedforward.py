@@ -556,7 +556,9 @@ def test_defaults_match_the_loops():
         blk = mth_power_feedforward_cc(FS, power, 16)
         assert blk.point_angle() == default_point_angle(power)
         assert blk.weighting() == default_weighting(power)
-        assert blk.delay() == 8 and blk.window() == 16
+        assert blk.delay() == 8 and blk.window() == 16 and blk.reset_tag_key() is None
+    assert mth_power_feedforward_cc(FS, 4, 16, reset_tag_key="").reset_tag_key() is None
+    assert mth_power_feedforward_cc(FS, 4, 16, reset_tag_key=BURST_KEY).reset_tag_key() == BURST_KEY
     assert mth_power_feedforward_cc(FS, 4, 16).point_angle() == pytest.approx(pi / 4, rel=1e-15)
     # The default weighting is the lower-variance one (small-error formulas, REFERENCES 6.1):
     # M = 1: the sum of z meets the MCRB (D'Andrea, Mengali & Reggiannini; from memory) exactly;

@@ -206,6 +206,10 @@ class mth_power_feedforward_cc(gr.sync_block):
         """The weighting in use: "power", "magnitude" or "phase"."""
         return self._weighting
 
+    def reset_tag_key(self):
+        """Key of the stream tag that starts a new burst, or None."""
+        return self._reset_key
+
     def point_angle(self):
         """Angle of one constellation point after correction, rad."""
         return self._point_angle

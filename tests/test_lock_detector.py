@@ -433,6 +433,10 @@ def test_gaps_and_spikes_do_not_poison(tb):
     (dict(status_interval=-1), "status_interval"),
     (dict(status_interval=100), "status_interval"),
     (dict(status_interval=2048.5), "status_interval"),
+    (dict(sample_rate=None), "sample_rate"),
+    (dict(power="four"), "power"),
+    (dict(window=float("inf")), "window"),
+    (dict(lock_threshold="high"), "lock_threshold"),
 ])
 def test_validation(kwargs, name):
     args = dict(sample_rate=FS, power=4, window=1024)

@@ -13,6 +13,18 @@ from .mth_power_loop_cc import default_point_angle
 #: Accepted window lengths, samples.
 MIN_WINDOW = 32
 MAX_WINDOW = 1 << 20
+#: Items per work() call the block arranges buffers for (amortises the per-call cost of a
+#: Python block): the upstream buffer is enlarged through an unused history of this many
+#: items, and the block's own output buffer holds two such calls.
+CALL_ITEMS = 1 << 15
+
+
+def _real(name, value):
+    """``float(value)``, or ValueError naming the parameter if it is not a real number."""
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        raise ValueError(f"{name} must be a real number, got {value!r}") from None
 
 
 def _tag_double(value):
@@ -78,16 +90,28 @@ class lock_detector_cc(gr.sync_block):
     Samples are released in whole windows (the decision for a window is needed
     before its first sample leaves the block), so a finite stream's last
     incomplete window, fewer than ``window`` samples, is not passed on.
+    To keep the per-call cost of a Python block low the block asks GNU Radio for
+    calls of up to 32768 samples (an unused input history enlarges the upstream
+    buffer); decisions never depend on how the stream is split into calls.
     The lock indicator is a statistical decision, not a safety-of-life signal.
     """
 
     def __init__(self, sample_rate, power, window=1024, lock_threshold=None, unlock_threshold=None,
                  point_angle=None, status_interval=0, name="lock_detector_cc"):
+        sample_rate, power, window = (_real(k, v) for k, v in
+                                      (("sample_rate", sample_rate), ("power", power), ("window", window)))
+        status_interval = _real("status_interval", status_interval)
+        if lock_threshold is not None:
+            lock_threshold = _real("lock_threshold", lock_threshold)
+        if unlock_threshold is not None:
+            unlock_threshold = _real("unlock_threshold", unlock_threshold)
+        if point_angle is not None:
+            point_angle = _real("point_angle", point_angle)
         if not np.isfinite(sample_rate) or sample_rate <= 0:
             raise ValueError(f"sample_rate must be a positive number of samples/s, got {sample_rate!r}")
-        if int(power) != power or not 1 <= power <= MAX_POWER:
+        if not np.isfinite(power) or int(power) != power or not 1 <= power <= MAX_POWER:
             raise ValueError(f"power must be an integer in 1..{MAX_POWER}, got {power!r}")
-        if int(window) != window or not MIN_WINDOW <= window <= MAX_WINDOW:
+        if not np.isfinite(window) or int(window) != window or not MIN_WINDOW <= window <= MAX_WINDOW:
             raise ValueError(f"window must be an integer in {MIN_WINDOW}..{MAX_WINDOW} samples, got {window!r}")
         power, window = int(power), int(window)
         default_lock, default_unlock = lockstat.default_thresholds(window)
@@ -104,7 +128,8 @@ class lock_detector_cc(gr.sync_block):
             point_angle = default_point_angle(power)
         if not np.isfinite(point_angle):
             raise ValueError(f"point_angle must be a finite angle in rad, got {point_angle!r}")
-        if int(status_interval) != status_interval or (status_interval != 0 and status_interval < window):
+        if (not np.isfinite(status_interval) or int(status_interval) != status_interval
+                or (status_interval != 0 and status_interval < window)):
             raise ValueError(
                 f"status_interval must be 0 (off) or an integer >= window = {window} samples, got {status_interval!r}")
 
@@ -121,6 +146,14 @@ class lock_detector_cc(gr.sync_block):
 
         # Whole windows per call, so a window's decision exists before its first sample leaves.
         self.set_output_multiple(window)
+        # Large calls: GNU Radio sizes the upstream buffer for our history, so an unused history
+        # of CALL_ITEMS items gives calls of up to CALL_ITEMS new items (work() skips it).
+        self._history = CALL_ITEMS + 1
+        self.set_history(self._history)
+        level = self.log_level()
+        self.set_log_level("warning")          # GNU Radio logs this call at info level
+        self.set_min_output_buffer(2 * max(CALL_ITEMS, window))
+        self.set_log_level(level)
         self.message_port_register_out(metadata.STATUS_PORT_PMT)
 
         self._acc = lockstat.new_accumulator()
@@ -132,15 +165,16 @@ class lock_detector_cc(gr.sync_block):
         self._rx_origin = None                 # (tag offset, whole seconds, fraction)
         self._freq_hz = None
         self._srcid = pmt.intern(name)
+        self._bufs = None
         self._warm_up()
 
     # --- helpers -------------------------------------------------------------------
     def _warm_up(self):
         """Compile the kernels now rather than in the first work() call."""
         x = np.ones(2 * MIN_WINDOW, np.complex64)
-        sums = [np.zeros(3) for _ in range(4)]
-        lockstat.window_sums(x, self._power, *self._rot, MIN_WINDOW, lockstat.new_accumulator(), *sums)
-        lockstat.hysteresis(sums[0], 0.5, 0.25, False, np.zeros(3, np.bool_))
+        bufs = [np.zeros(3) for _ in range(6)]
+        k = lockstat.window_sums(x, self._power, *self._rot, MIN_WINDOW, lockstat.new_accumulator(), *bufs[:4])
+        lockstat.decide_windows(*bufs[:4], k, MIN_WINDOW, 0.5, 0.25, False, *bufs[4:], np.zeros(3, np.bool_))
 
     def start(self):
         self._srcid = pmt.intern(self.alias())
@@ -175,48 +209,50 @@ class lock_detector_cc(gr.sync_block):
         return self._window
 
     # --- streaming -------------------------------------------------------------------
+    def _buffers(self, n):
+        """Per-window work arrays with room for the windows completed in ``n`` samples."""
+        need = n // self._window + 1
+        if self._bufs is None or len(self._bufs[0]) < need:
+            self._bufs = tuple(np.empty(need) for _ in range(6)) + (np.empty(need, np.bool_),)
+        return self._bufs
+
     def work(self, input_items, output_items):
-        x = input_items[0]
+        x = input_items[0][self._history - 1:]
         n = len(x)
         output_items[0][:] = x
-        start = self.nitems_read(0)
-        cap = n // self._window + 1
-        proj, m2, m4, valid = (np.empty(cap) for _ in range(4))
+        proj, m2, m4, valid, metric, esn0_db, decisions = self._buffers(n)
         k = lockstat.window_sums(x, self._power, self._rot[0], self._rot[1], self._window,
                                  self._acc, proj, m2, m4, valid)
         upstream = self._upstream_tags(n)
         if k == 0:
             self._apply_tags(upstream)
             return n
-
-        metric = proj[:k] / self._window
-        has = valid[:k] > 0
-        safe = np.where(has, valid[:k], 1.0)
-        esn0 = np.where(has, lockstat.m2m4_esn0(m2[:k] / safe, m4[:k] / safe), np.nan)
-        esn0_db = lockstat.esn0_db(esn0)
-        decisions = np.empty(k, np.bool_)
         before = self._locked_state
-        lockstat.hysteresis(metric, self._lock_thr, self._unlock_thr, before, decisions)
+        lockstat.decide_windows(proj, m2, m4, valid, k, self._window, self._lock_thr,
+                                self._unlock_thr, before, metric, esn0_db, decisions)
         first = self._windows_done
         w = self._window
 
         # events: state changes (at window starts) and interval statuses
-        previous = np.concatenate(([before], decisions[:-1]))
-        change_at = {(first + int(i)) * w for i in np.flatnonzero(decisions != previous)}
+        change_at = set()
+        if decisions[0] != before or (k > 1 and np.any(decisions[1:k] != decisions[:k - 1])):
+            previous = np.concatenate(([before], decisions[:k - 1]))
+            change_at = {(first + int(i)) * w for i in np.flatnonzero(decisions[:k] != previous)}
         end = (first + k) * w
         status_at = set()
-        if self._status_interval:
-            s = self._next_status
-            status_at = set(range(s, end, self._status_interval))
-            if status_at:
-                self._next_status = max(status_at) + self._status_interval
-        self._publish(sorted(change_at | status_at), change_at, status_at, upstream,
-                      first, metric, esn0_db, decisions)
+        if self._status_interval and self._next_status < end:
+            status_at = set(range(self._next_status, end, self._status_interval))
+            self._next_status = max(status_at) + self._status_interval
+        if change_at or status_at:
+            self._publish(sorted(change_at | status_at), change_at, status_at, upstream,
+                          first, metric, esn0_db, decisions)
+        else:
+            self._apply_tags(upstream)
 
         self._windows_done = first + k
-        self._locked_state = bool(decisions[-1])
-        self._metric = float(metric[-1])
-        self._esn0_db = float(esn0_db[-1])
+        self._locked_state = bool(decisions[k - 1])
+        self._metric = float(metric[k - 1])
+        self._esn0_db = float(esn0_db[k - 1])
         return n
 
     def _upstream_tags(self, n):

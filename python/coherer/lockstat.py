@@ -40,15 +40,17 @@ API
 ``false_lock_probability(window, threshold)``, ``default_thresholds(window)``,
 ``c_m(power, esn0)``, ``projection_variance(power, esn0, phase_error)``,
 ``detection_probability(power, esn0, window, threshold, phase_error)``,
-``m2m4_esn0(m2, m4)``, ``esn0_db(esn0)``; numba kernels ``unit_projection``
-(one sample, for use inside other kernels), ``window_sums`` (chunks with
-carried partial-window state) and ``hysteresis``.
+``m2m4_esn0(m2, m4)``, ``esn0_db(esn0)`` (element-wise; their scalar numba
+forms ``m2m4_esn0_scalar``, ``esn0_db_scalar`` can be called from kernels);
+numba kernels ``unit_projection`` (one sample, for use inside other kernels),
+``window_sums`` (chunks with carried partial-window state), ``hysteresis`` and
+``decide_windows`` (metric, Es/N0 and decisions of completed windows).
 """
 
 from math import sqrt
 
 import numpy as np
-from numba import njit
+from numba import njit, vectorize
 from scipy import special, stats
 
 #: Per-window false-lock probability the default lock threshold is set for.
@@ -137,28 +139,47 @@ def detection_probability(power, esn0, window, threshold, phase_error=0.0):
 
 # --- M2M4 --------------------------------------------------------------------------
 
-def m2m4_esn0(m2, m4):
+@njit(nogil=True, cache=True)
+def m2m4_esn0_scalar(m2, m4):
     """M2M4 Es/N0 (linear) from ``M2 = mean|y|^2`` and ``M4 = mean|y|^4`` (Pauluzzi & Beaulieu 2000).
 
     ``S = sqrt(max(2 M2^2 - M4, 0))``, ``N = M2 - S``, result ``S / N``; ``inf`` when
-    N <= 0 (no noise seen), NaN where M2 is not a positive number. Element-wise.
+    N <= 0 (no noise seen), NaN unless M2 is a positive finite number.
     """
-    m2 = np.asarray(m2, dtype=np.float64)
-    m4 = np.asarray(m4, dtype=np.float64)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        s = np.sqrt(np.maximum(2.0 * m2 * m2 - m4, 0.0))
-        n = m2 - s
-        rho = np.where(n > 0.0, s / np.where(n > 0.0, n, 1.0), np.inf)
-        rho = np.where(m2 > 0.0, rho, np.nan)
-    return float(rho) if rho.ndim == 0 else rho
+    if not (m2 > 0.0 and m2 < np.inf):
+        return np.nan
+    s2 = 2.0 * m2 * m2 - m4
+    s = np.sqrt(s2) if s2 > 0.0 else 0.0
+    n = m2 - s
+    if n <= 0.0:
+        return np.inf
+    return s / n
+
+
+@njit(nogil=True, cache=True)
+def esn0_db_scalar(esn0):
+    """10 log10 of a linear Es/N0, clamped to [ESN0_DB_MIN, ESN0_DB_MAX] dB; NaN stays NaN."""
+    if np.isnan(esn0):
+        return np.nan
+    if esn0 <= 0.0:
+        return ESN0_DB_MIN
+    return min(max(10.0 * np.log10(esn0), ESN0_DB_MIN), ESN0_DB_MAX)
+
+
+_m2m4_ufunc = vectorize(["float64(float64, float64)"], cache=True)(m2m4_esn0_scalar.py_func)
+_esn0_db_ufunc = vectorize(["float64(float64)"], cache=True)(esn0_db_scalar.py_func)
+
+
+def m2m4_esn0(m2, m4):
+    """Element-wise :func:`m2m4_esn0_scalar` (float for scalar input, else an array)."""
+    r = _m2m4_ufunc(np.asarray(m2, dtype=np.float64), np.asarray(m4, dtype=np.float64))
+    return float(r) if np.ndim(r) == 0 else r
 
 
 def esn0_db(esn0):
-    """10 log10 of a linear Es/N0, clamped to [ESN0_DB_MIN, ESN0_DB_MAX] dB; NaN stays NaN."""
-    with np.errstate(divide="ignore"):
-        db = 10.0 * np.log10(np.asarray(esn0, dtype=np.float64))
-    db = np.clip(db, ESN0_DB_MIN, ESN0_DB_MAX)
-    return float(db) if db.ndim == 0 else db
+    """Element-wise :func:`esn0_db_scalar` (float for scalar input, else an array)."""
+    r = _esn0_db_ufunc(np.asarray(esn0, dtype=np.float64))
+    return float(r) if np.ndim(r) == 0 else r
 
 
 # --- numba kernels ----------------------------------------------------------------
@@ -176,16 +197,45 @@ def _unit_power(u, m):
     return result
 
 
+@njit(cache=True, inline="always")
+def _projection(zr, zi, p, power, rot):
+    """``Re((z/|z|)^M rot)`` for a sample with power ``p = |z|^2 > 0`` (finite).
+    Even M squares first (one reciprocal, no square root): ``(z/|z|)^2 = z^2 / p``."""
+    if power % 2 == 0:
+        inv = 1.0 / p
+        u = _unit_power(complex((zr * zr - zi * zi) * inv, 2.0 * zr * zi * inv), power // 2)
+    else:
+        r = 1.0 / np.sqrt(p)
+        u = _unit_power(complex(zr * r, zi * r), power)
+    return u.real * rot.real - u.imag * rot.imag
+
+
 @njit(nogil=True, cache=True)
 def unit_projection(z, power, rot):
     """``Re((z/|z|)^M rot)`` for one sample (``rot = e^{-j M point_angle}``);
     returns ``(value, valid)``, value 0 and valid False for NaN, Inf or zero ``z``."""
-    p = z.real * z.real + z.imag * z.imag
-    if not np.isfinite(p) or p == 0.0:
+    zr = np.float64(z.real)
+    zi = np.float64(z.imag)
+    p = zr * zr + zi * zi
+    if not (p > 0.0 and p < np.inf):
         return 0.0, False
-    r = np.sqrt(p)
-    u = complex(z.real / r, z.imag / r)
-    return (_unit_power(u, power) * rot).real, True
+    return _projection(zr, zi, p, power, rot), True
+
+
+@njit(cache=True, inline="always")
+def _segment(x, i0, i1, power, rot, s_proj, s_m2, s_m4, s_valid):
+    """Add samples ``x[i0:i1]`` to the running window sums. Inlined with a constant
+    ``power`` for the common M, so the power loop unrolls."""
+    for i in range(i0, i1):
+        zr = np.float64(x[i].real)
+        zi = np.float64(x[i].imag)
+        p = zr * zr + zi * zi
+        if p > 0.0 and p < np.inf:
+            s_proj += _projection(zr, zi, p, power, rot)
+            s_m2 += p
+            s_m4 += p * p
+            s_valid += 1.0
+    return s_proj, s_m2, s_m4, s_valid
 
 
 @njit(nogil=True, cache=True)
@@ -193,32 +243,36 @@ def window_sums(x, power, rot_re, rot_im, window, acc, proj, m2, m4, valid):
     """Accumulate lock-statistic and moment sums of ``x`` over windows of ``window`` samples.
 
     ``acc`` (see ``A_*``) carries the window in progress between calls, so any
-    split of a stream gives the same windows. For each window completed in this
-    call, writes its sums (not means) to ``proj``, ``m2``, ``m4`` and its number of
-    valid samples to ``valid`` (each at least ``len(x) // window + 1`` long) and
-    returns how many windows were completed. Gap samples (NaN, Inf, 0) count
-    toward the window length but add nothing.
+    split of a stream gives the same windows and bit-identical sums. For each
+    window completed in this call, writes its sums (not means) to ``proj``,
+    ``m2``, ``m4`` and its number of valid samples to ``valid`` (each at least
+    ``len(x) // window + 1`` long) and returns how many windows were completed.
+    Gap samples (NaN, Inf, 0) count toward the window length but add nothing.
     """
     rot = complex(rot_re, rot_im)
     s_proj = acc[A_PROJ]
     s_m2 = acc[A_M2]
     s_m4 = acc[A_M4]
     s_valid = acc[A_VALID]
-    fill = acc[A_FILL]
+    fill = int(acc[A_FILL])
     done = 0
-    for n in range(x.shape[0]):
-        zr = np.float64(x[n].real)
-        zi = np.float64(x[n].imag)
-        p = zr * zr + zi * zi
-        if np.isfinite(p) and p > 0.0:
-            r = np.sqrt(p)
-            u = complex(zr / r, zi / r)
-            s_proj += (_unit_power(u, power) * rot).real
-            s_m2 += p
-            s_m4 += p * p
-            s_valid += 1.0
-        fill += 1.0
-        if fill >= window:
+    n = 0
+    total = x.shape[0]
+    while n < total:
+        stop = min(total, n + window - fill)
+        if power == 1:
+            s_proj, s_m2, s_m4, s_valid = _segment(x, n, stop, 1, rot, s_proj, s_m2, s_m4, s_valid)
+        elif power == 2:
+            s_proj, s_m2, s_m4, s_valid = _segment(x, n, stop, 2, rot, s_proj, s_m2, s_m4, s_valid)
+        elif power == 4:
+            s_proj, s_m2, s_m4, s_valid = _segment(x, n, stop, 4, rot, s_proj, s_m2, s_m4, s_valid)
+        elif power == 8:
+            s_proj, s_m2, s_m4, s_valid = _segment(x, n, stop, 8, rot, s_proj, s_m2, s_m4, s_valid)
+        else:
+            s_proj, s_m2, s_m4, s_valid = _segment(x, n, stop, power, rot, s_proj, s_m2, s_m4, s_valid)
+        fill += stop - n
+        n = stop
+        if fill == window:
             proj[done] = s_proj
             m2[done] = s_m2
             m4[done] = s_m4
@@ -228,7 +282,7 @@ def window_sums(x, power, rot_re, rot_im, window, acc, proj, m2, m4, valid):
             s_m2 = 0.0
             s_m4 = 0.0
             s_valid = 0.0
-            fill = 0.0
+            fill = 0
     acc[A_PROJ] = s_proj
     acc[A_M2] = s_m2
     acc[A_M4] = s_m4
@@ -258,10 +312,26 @@ def hysteresis(metric, lock_threshold, unlock_threshold, locked, out):
     return state
 
 
+@njit(nogil=True, cache=True)
+def decide_windows(proj, m2, m4, valid, count, window, lock_threshold, unlock_threshold, locked,
+                   metric, esn0_db_out, decisions):
+    """Finish ``count`` windows from :func:`window_sums`: ``metric = proj / window``,
+    M2M4 Es/N0 in dB from the valid samples (NaN if none), and the lock decisions
+    with :func:`hysteresis` starting from ``locked``. Returns the final state."""
+    for k in range(count):
+        metric[k] = proj[k] / window
+        if valid[k] > 0.0:
+            esn0_db_out[k] = esn0_db_scalar(m2m4_esn0_scalar(m2[k] / valid[k], m4[k] / valid[k]))
+        else:
+            esn0_db_out[k] = np.nan
+    return hysteresis(metric[:count], lock_threshold, unlock_threshold, locked, decisions[:count])
+
+
 __all__ = [
     "DEFAULT_LOCK_P_FA", "DEFAULT_UNLOCK_P_FA", "ESN0_DB_MIN", "ESN0_DB_MAX",
     "A_PROJ", "A_M2", "A_M4", "A_VALID", "A_FILL", "ACC_SIZE", "new_accumulator",
     "noise_std", "false_lock_threshold", "false_lock_probability", "default_thresholds",
-    "c_m", "projection_variance", "detection_probability", "m2m4_esn0", "esn0_db",
-    "unit_projection", "window_sums", "hysteresis",
+    "c_m", "projection_variance", "detection_probability",
+    "m2m4_esn0_scalar", "esn0_db_scalar", "m2m4_esn0", "esn0_db",
+    "unit_projection", "window_sums", "hysteresis", "decide_windows",
 ]

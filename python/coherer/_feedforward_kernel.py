@@ -25,18 +25,17 @@ Weightings F: ``WEIGHT_POWER`` |x|^M (F(|x|) e^{jM arg x} = x^M), ``WEIGHT_MAGNI
 
 Implementation notes
     * Each call is processed in pieces of up to PIECE samples, each in four
-      passes: terms (element-wise), sliding sums (serial), unit phasors and
-      principal roots (element-wise), unwrapping / delay line / outputs
-      (serial). The element-wise passes are plain loops that LLVM can vectorise.
+      passes: terms (element-wise), sliding sums (serial), principal roots
+      (element-wise), unwrapping / delay line / outputs (serial).
     * Sliding sum without cancellation: the stream since the reset is cut
       into blocks of W samples. The window sum is the suffix sum of the
       previous block (stored when it completed, reverse cumulative sum) plus
       the running prefix sum of the current block. Nothing is ever
       subtracted, so one huge sample cannot leave a residue behind once it is
       out of the window, and rounding cannot drift.
-    * The unwrapping decision uses only signs of w_{i-1}, w_i and their cross
-      product (exactly the rule above); the phasor e^{j theta} is the
-      principal M-th root of w (half-angle steps for M = 2, 4, 8, 16, else
+    * The unwrapping decision uses only the signs of Im S_{i-1}, Im S_i and of
+      their cross product (exactly the rule above); the phasor e^{j theta} is
+      the principal M-th root of w (half-angle steps for M = 2, 4, 8, 16, else
       atan2/cos/sin) times e^{j 2 pi k / M}, k the unwrapping index mod M.
     * When S_i = 0 (only gaps in the window) theta is held.
     * A reset at sample r: input samples r-D .. r-1 not yet output are
@@ -119,7 +118,7 @@ def _mth_power_terms(x, power, weighting, tr, ti, valid, br, bi, mag):
     """Terms t = F(|x|) e^{j M arg x} of every sample (0 for a gap), element-wise
     (``br``, ``bi``, ``mag``: scratch of the same length).
 
-    Written as separate simple loops over the arrays so that they vectorise.
+    Written as separate simple loops over the arrays.
     """
     n_items = x.shape[0]
     cap = 10.0 ** (POWER_WEIGHT_EXPONENT_CAP / power)
@@ -161,48 +160,52 @@ def _mth_power_terms(x, power, weighting, tr, ti, valid, br, bi, mag):
 
 @njit(cache=True, error_model="numpy")
 def _principal_roots(sr, si, power, rr, ri):
-    """Normalise every S in place to the unit phasor w = S / |S| (0 stays 0) and write the
-    principal M-th root of w (arg in (-pi, pi]) to rr, ri; (1, 0) where S = 0.
+    """Principal M-th root e^{j phi} (phi = arg(S)/M in (-pi/M, pi/M]) of every window sum
+    S = sr + j si, as a unit phasor in rr, ri; (1, 0) where S = 0.
 
-    |S| is formed after scaling by max(|Re S|, |Im S|), so no S up to the float64 range
-    overflows. Half-angle steps (no trigonometry) when M is a power of two, else
-    atan2/cos/sin.
+    M = 2^k: k half-angle steps on the unnormalised sum, h <- h + |h| (the bisector of h
+    and the real axis; S on the negative real axis, arg pi, goes to +j), then one
+    normalisation; no trigonometry. Other M: atan2/cos/sin.
+    An S with max(|Re|, |Im|) outside [1e-150, 1e150] is divided in place by that
+    maximum (a positive factor: signs and the signs of cross products, which is all the
+    unwrapping looks at, are unchanged) so that no square or product overflows.
     """
-    n_items = sr.shape[0]
-    for n in range(n_items):
-        a = sr[n]
-        b = si[n]
-        big = max(abs(a), abs(b))
-        ok = big > 0.0
-        inv_big = 1.0 / big if ok else 0.0
-        a *= inv_big
-        b *= inv_big
-        inv = 1.0 / np.sqrt(a * a + b * b) if ok else 0.0
-        a *= inv
-        b *= inv
-        sr[n] = a
-        si[n] = b
-        rr[n] = a if ok else 1.0
-        ri[n] = b
+    halvings = -1
     if power & (power - 1) == 0:
+        halvings = 0
         m = power
         while m > 1:
             m >>= 1
-            for n in range(n_items):
-                hr = 1.0 + rr[n]
-                hi = ri[n]
-                nn = np.sqrt(hr * hr + hi * hi)
-                inv = 1.0 / nn if nn > 0.0 else 0.0
-                rr[n] = hr * inv                 # w = -1 (arg pi) -> j (arg pi/2)
-                ri[n] = hi * inv if nn > 0.0 else 1.0
-    else:
-        for n in range(n_items):
-            wr = rr[n]
-            wi = ri[n]
-            a = np.pi if (wi == 0.0 and wr < 0.0) else np.arctan2(wi, wr)
-            a /= power
-            rr[n] = np.cos(a)
-            ri[n] = np.sin(a)
+            halvings += 1
+    for n in range(sr.shape[0]):
+        a = sr[n]
+        b = si[n]
+        big = max(abs(a), abs(b))
+        if big == 0.0:
+            rr[n] = 1.0
+            ri[n] = 0.0
+            continue
+        if big > 1e150 or big < 1e-150:
+            a /= big
+            b /= big
+            sr[n] = a
+            si[n] = b
+        if halvings < 0:
+            ang = np.pi if (b == 0.0 and a < 0.0) else np.arctan2(b, a)
+            ang /= power
+            rr[n] = np.cos(ang)
+            ri[n] = np.sin(ang)
+            continue
+        hr = a
+        hi = b
+        for _ in range(halvings):
+            mag = np.sqrt(hr * hr + hi * hi)
+            hr += mag
+            if hr == 0.0 and hi == 0.0:      # exactly on the negative real axis: arg pi -> pi/2
+                hi = mag
+        inv = 1.0 / np.sqrt(hr * hr + hi * hi)
+        rr[n] = hr * inv
+        ri[n] = hi * inv
 
 
 @njit(cache=True, error_model="numpy")
@@ -253,7 +256,7 @@ def _sliding_sums(tr, ti, resets, state, terms, suffix, window, rot_re, rot_im, 
 @njit(cache=True, error_model="numpy")
 def _unwrap_and_output(x, valid, sr, si, rr, ri, out, ref, freq, phase, resets, state, delay_x,
                        delay_p, delay_f, history_p, power, window, roots_re, roots_im):
-    """V&V unwrapping of each estimate (``sr``, ``si``: unit phasors S/|S|, 0 where S = 0),
+    """V&V unwrapping of each estimate (``sr``, ``si``: S up to a positive factor, 0 where S = 0),
     phase assignment to the sample at the window centre (or, at a reset, to the samples
     still in the delay), outputs."""
     n_items = x.shape[0]
@@ -408,7 +411,7 @@ def feedforward(x, out, ref, freq, phase, resets, state, terms, suffix, delay_x,
         # 2. sliding sums (serial)
         _sliding_sums(tr[:m], ti[:m], local_resets, state, terms, suffix, window, rot_re, rot_im,
                       sr[:m], si[:m])
-        # 3. unit phasors and principal roots (element-wise)
+        # 3. principal roots (element-wise)
         _principal_roots(sr[:m], si[:m], power, rr[:m], ri[:m])
         # 4. unwrapping, delay line and outputs (serial)
         _unwrap_and_output(xs, valid[:m], sr[:m], si[:m], rr[:m], ri[:m], out[a:b], ref[a:b],

@@ -95,13 +95,6 @@ def validate_sigmf(meta_path):
 
 # --- each format finds the lock interval, the offset and Es/N0 ---------------------------------
 
-# Known loop defect (mth_power_loop_cc slip tracker, as of commit b14d50d and the work in
-# progress after it): after the loop acquires or the carrier frequency changes, the tracker
-# declares a +1 slip every few tens of ms while the loop is in fact locked (checked against
-# the true carrier phase in `coherer demo`). Remove the marker when the tracker is fixed.
-SLIP_TRACKER_XFAIL = pytest.mark.xfail(
-    reason="loop slip tracker declares false slips (periodic +1) after acquisition or a frequency change",
-    strict=False)
 
 
 
@@ -153,7 +146,6 @@ def test_run_each_format_finds_interval_offset_and_esn0(tmp_path, fmt):
     assert any(ln.startswith("locked ") for ln in lines)
 
 
-@SLIP_TRACKER_XFAIL
 def test_steady_carrier_reports_no_slip(tmp_path):
     """A constant offset at Es/N0 10 dB: loop SNR 1/(B_L T V_2) = 1/(0.0025 * 0.42) = 950, so
     Viterbi's mean time to a slip pi^2 rho I0(rho)^2 / (2 B_L) (REFERENCES 5, formula from
@@ -202,7 +194,6 @@ def test_sigmf_archive(tmp_path):
     assert "--annotate" in one_error_line(proc)
 
 
-@SLIP_TRACKER_XFAIL
 def test_forced_slip_is_reported(tmp_path):
     """A +15 Hz carrier frequency step at 3 s, far beyond the pull-out range of a
     B_L = 20 Hz squaring loop (Gardner's pull-out 1.8 wn (zeta + 1) is about 116 rad/s in the

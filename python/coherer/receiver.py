@@ -6,6 +6,10 @@ Used by ``coherer run`` and ``coherer demo``. The collector is a sink that keeps
 the events (lock, unlock, cycle slip), the per-window status (lock metric,
 Es/N0), per-interval statistics, and decimated traces for the plots. Nothing
 here prints: progress is reported through a callback.
+
+The lock detector decides what "locked" means for the events: cycle slips the
+loop declares while the detector says unlocked (the carrier is gone or not yet
+acquired, so there is no phase to slip against) are counted, not listed.
 """
 
 import threading
@@ -88,6 +92,7 @@ class _collector(gr.sync_block):
         self.intervals = []
         self._open = None             # the Interval being accumulated while locked
         self._trace = {"sample": [], "before": [], "after": [], "freq": [], "phase": []}
+        self.slips_outside_lock = 0   # loop slip tags while the detector said unlocked
         self.progress = 0
         self.error = None             # first exception caught in work(), if any
 
@@ -121,6 +126,9 @@ class _collector(gr.sync_block):
                 pos = rel
                 self._on_lock_change(offset, bool(pmt.to_bool(value)), float(freq[rel]))
             elif key == metadata.CYCLE_SLIP:
+                if self._open is None:    # detector unlocked: no carrier phase to slip against
+                    self.slips_outside_lock += 1
+                    continue
                 self.events.append({"event": "cycle_slip", "sample": int(offset),
                                     "time_s": offset / self._fs, "freq_hz": float(freq[rel]),
                                     "slips": int(pmt.to_long(value))})
@@ -198,6 +206,7 @@ class RunResult:
     thresholds: tuple                #: (lock, unlock) thresholds of the detector
     loop_design: object              #: :class:`coherer.design.LoopDesign`
     wall_s: float
+    slips_outside_lock: int = 0      #: loop slip tags dropped: the detector said unlocked
 
     def interval_summaries(self):
         rec = self.recording
@@ -310,7 +319,7 @@ def run_receiver(rec, settings, progress=None):
             if e["event"] == "lock":
                 e["carrier_hz"] = rec.center_freq_hz + e["freq_hz"]
     return RunResult(rec, settings, processed, events, sink.intervals, status, sink.traces(),
-                     thresholds, loop.loop_design(), time.monotonic() - t0)
+                     thresholds, loop.loop_design(), time.monotonic() - t0, sink.slips_outside_lock)
 
 
 def _getter(blk, name):

@@ -80,6 +80,7 @@ def summarise(result):
             "lock_count": len(locks),
             "cycle_slip_events": len(slips),
             "cycle_slips_total": int(sum(e["slips"] for e in slips)),
+            "loop_slip_tags_while_unlocked": result.slips_outside_lock,
             "intervals": intervals,
         },
         "events": result.events,

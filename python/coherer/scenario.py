@@ -15,7 +15,7 @@ Timeline (defaults)::
     11.0 s  deep fade (-30 dB) for 1.2 s while the payload swings into an antenna null
     13.0 s  Es/N0 falls to 4 dB over 2 s and stays there until 21 s, then recovers
             over 1 s (payload antenna pattern null at low elevation)
-    23.0 s  the transmitter's crystal jumps +12 Hz (payload heater switching on):
+    23.0 s  the transmitter's crystal jumps +16 Hz (payload heater switching on):
             beyond the loop's pull-out range, so the loop slips while it re-settles
     26.0 s  end
 """
@@ -60,7 +60,7 @@ class BalloonScenario:
     low_edges_s: tuple = (2.0, 1.0)      #: raised-cosine fall before it and rise after it
     low_esn0_db: float = 4.0
     jump_s: float = 23.0                 #: time of the oscillator frequency jump
-    jump_hz: float = 12.0
+    jump_hz: float = 16.0
     start_phase: float = 1.0             #: carrier phase at t = 0, rad
     seed: int = 20261201
 

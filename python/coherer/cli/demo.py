@@ -137,8 +137,12 @@ def judge(result, sc):
         if before.any() and after.any() and s[-1] >= sc.jump_s + SLIP_WINDOW_S - 0.5:
             # carrier minus NCO grew by k cycles of 2 pi/M: the NCO fell k slips behind (-k)
             actual = -int(np.round(np.median(unwrapped[after]) - np.median(unwrapped[before])))
+    lost = [e["time_s"] for e in result.events if e["event"] == "unlock"
+            and sc.jump_s <= e["time_s"] < sc.jump_s + SLIP_WINDOW_S]
+    note = (f"the detector lost lock at {lost[0]:.2f} s: slips while unlocked are not listed"
+            if lost else "")
     add(f"cycle slips at the {sc.jump_hz:+.0f} Hz jump", declared, actual, "exact", "x 2pi/M",
-        actual is not None and declared == actual)
+        actual is not None and declared == actual, note)
     others = sum(1 for e in result.events if e["event"] == "cycle_slip"
                  and not sc.jump_s <= e["time_s"] < sc.jump_s + SLIP_WINDOW_S)
     add("cycle-slip events elsewhere", others, 0, "exact", "", others == 0)

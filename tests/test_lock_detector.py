@@ -502,3 +502,48 @@ def test_after_gnuradio_costas_loop(tb):
     changes = lock_tags(sink)
     assert len(changes) == 1 and changes[0][1] and changes[0][0] < 0.1 * FS
     assert det.locked()
+
+
+# --- status dict and rx_time helpers (coherer.metadata) ---------------------------------
+
+def test_status_dict_types():
+    # DESIGN.md status-dict keys and pmt types: locked bool, metric/esn0_db/time_s/freq_hz double,
+    # sample uint64 (also beyond 2^32).
+    d = metadata.status_dict(np.bool_(True), np.float32(0.5), 12.5, 2 ** 40 + 3, 1.25, np.float64(-3.0))
+    assert pmt.is_bool(pmt.dict_ref(d, metadata.ST_LOCKED_PMT, pmt.PMT_NIL))
+    for key in (metadata.ST_METRIC_PMT, metadata.ST_ESN0_DB_PMT, metadata.ST_TIME_S_PMT, metadata.ST_FREQ_HZ_PMT):
+        assert pmt.is_real(pmt.dict_ref(d, key, pmt.PMT_NIL))
+    sample = pmt.dict_ref(d, metadata.ST_SAMPLE_PMT, pmt.PMT_NIL)
+    assert pmt.is_uint64(sample) and pmt.to_uint64(sample) == 2 ** 40 + 3
+    assert metadata.status_from_pmt(d) == {"locked": True, "metric": 0.5, "esn0_db": 12.5,
+                                           "sample": 2 ** 40 + 3, "time_s": 1.25, "freq_hz": -3.0}
+    assert metadata.ST_FREQ_HZ not in metadata.status_from_pmt(metadata.status_dict(False, 0, 0, 0, 0))
+
+
+def test_rx_time_decoding():
+    assert metadata.decode_rx_time(metadata.rx_time_pmt(1_700_000_000, 0.5)) == (1_700_000_000, 0.5)
+    assert metadata.decode_rx_time(pmt.make_tuple(pmt.from_long(5), pmt.from_double(0.25))) == (5, 0.25)
+    for bad in (pmt.from_double(1.0), pmt.make_tuple(pmt.from_long(1)), pmt.intern("x"),
+                pmt.make_tuple(pmt.intern("a"), pmt.from_double(0.0)), pmt.PMT_NIL):
+        assert metadata.decode_rx_time(bad) is None
+    # time of sample 2500 at 1 kS/s after an rx_time (10 s + 0.75) tagged at offset 500: 12.75 s
+    assert metadata.elapsed_time_s((500, 10, 0.75), 2500, 1000.0) == pytest.approx(12.75, abs=1e-12)
+    assert metadata.elapsed_time_s(None, 2500, 1000.0) == 2.5
+
+
+def test_malformed_upstream_tags_are_ignored(tb):
+    """A bad rx_time or carrier_freq value is skipped (never raised in work())."""
+    rng = np.random.default_rng(9500)
+    x = psk(rng, 8192, 2, 15.0)
+    tags = [tag(0, metadata.RX_TIME, pmt.intern("garbage")), tag(10, metadata.CARRIER_FREQ, pmt.intern("x")),
+            tag(2000, metadata.CARRIER_FREQ, pmt.from_long(50))]
+    src = blocks.vector_source_c(x, False, 1, tags)
+    det = lock_detector_cc(FS, 2, 1024, status_interval=1024)
+    sink = blocks.null_sink(gr.sizeof_gr_complex)
+    dbg = blocks.message_debug()
+    tb.connect(src, det, sink)
+    tb.msg_connect((det, metadata.STATUS_PORT), (dbg, "store"))
+    tb.run()
+    msgs = messages(dbg)
+    assert len(msgs) == 8 and all(m["time_s"] == m["sample"] / FS for m in msgs)
+    assert [m.get("freq_hz") for m in msgs] == [None, None] + [50.0] * 6

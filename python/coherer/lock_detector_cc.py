@@ -166,6 +166,7 @@ class lock_detector_cc(gr.sync_block):
         self._freq_hz = None
         self._srcid = pmt.intern(name)
         self._bufs = None
+        self._failed = False                   # an unexpected error was logged once
         self._warm_up()
 
     # --- helpers -------------------------------------------------------------------
@@ -217,16 +218,26 @@ class lock_detector_cc(gr.sync_block):
         return self._bufs
 
     def work(self, input_items, output_items):
-        x = input_items[0][self._history - 1:]
+        x = input_items[0][self._history - 1:]     # skip the unused history
         n = len(x)
         output_items[0][:] = x
+        try:
+            self._detect(x, n)
+        except Exception as exc:                   # noqa: BLE001 - work() must never raise
+            if not self._failed:
+                self.logger.error(f"lock detection failed, samples still passed through: {exc!r}")
+            self._failed = True
+        return n
+
+    def _detect(self, x, n):
+        """Decide the windows completed in ``x``; place tags and publish messages."""
         proj, m2, m4, valid, metric, esn0_db, decisions = self._buffers(n)
         k = lockstat.window_sums(x, self._power, self._rot[0], self._rot[1], self._window,
                                  self._acc, proj, m2, m4, valid)
         upstream = self._upstream_tags(n)
         if k == 0:
             self._apply_tags(upstream)
-            return n
+            return
         before = self._locked_state
         lockstat.decide_windows(proj, m2, m4, valid, k, self._window, self._lock_thr,
                                 self._unlock_thr, before, metric, esn0_db, decisions)
@@ -243,17 +254,17 @@ class lock_detector_cc(gr.sync_block):
         if self._status_interval and self._next_status < end:
             status_at = set(range(self._next_status, end, self._status_interval))
             self._next_status = max(status_at) + self._status_interval
+
+        # state first, so it stays consistent whatever happens while publishing
+        self._windows_done = first + k
+        self._locked_state = bool(decisions[k - 1])
+        self._metric = float(metric[k - 1])
+        self._esn0_db = float(esn0_db[k - 1])
         if change_at or status_at:
             self._publish(sorted(change_at | status_at), change_at, status_at, upstream,
                           first, metric, esn0_db, decisions)
         else:
             self._apply_tags(upstream)
-
-        self._windows_done = first + k
-        self._locked_state = bool(decisions[k - 1])
-        self._metric = float(metric[k - 1])
-        self._esn0_db = float(esn0_db[k - 1])
-        return n
 
     def _upstream_tags(self, n):
         """rx_time and carrier_freq tags in this call, sorted by offset."""

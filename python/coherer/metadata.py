@@ -3,7 +3,9 @@
 status-dict keys (see the metadata schema in the design contract).
 
 Every block, the command-line tool and the tests import these names from
-here; no other module spells them out.
+here; no other module spells them out. It also builds the status dict
+(:func:`status_dict`) and decodes ``rx_time`` tags (:func:`decode_rx_time`,
+:func:`elapsed_time_s`), so every block does both the same way.
 """
 
 import pmt

@@ -26,7 +26,8 @@ class CompilerMissing(RuntimeError):
 
 @dataclass(frozen=True)
 class ReferenceRun:
-    seconds: tuple        #: time of each repetition over the whole file, s
+    seconds: tuple        #: wall time of each repetition over the whole file, s
+    cpu_seconds: tuple    #: CPU time of each repetition, s
     final_phase: float    #: NCO phase after the last repetition, rad
     final_freq: float     #: frequency register after the last repetition, rad/sample
 
@@ -66,11 +67,12 @@ def run_reference(exe, data_path, params, power, freq0=0.0, reps=1, out_path=Non
     if out_path is not None:
         cmd.append(str(out_path))
     text = subprocess.run(cmd, check=True, capture_output=True, text=True).stdout
-    seconds, phase, freq = [], np.nan, np.nan
+    seconds, cpu, phase, freq = [], [], np.nan, np.nan
     for line in text.splitlines():
         fields = line.split()
         if fields[:1] == ["rep"]:
             seconds.append(float(fields[3]))
+            cpu.append(float(fields[5]))
         elif fields[:1] == ["final"]:
             phase, freq = float(fields[2]), float(fields[4])
-    return ReferenceRun(tuple(seconds), phase, freq)
+    return ReferenceRun(tuple(seconds), tuple(cpu), phase, freq)

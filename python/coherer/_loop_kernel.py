@@ -42,20 +42,27 @@ counted from the start of the stream; on noise it has mean 0 and variance
 ``z = Qinv(P_FA)/sqrt(2)`` gives an exact false-lock probability.
 
 Cycle slips: a slip is a step of 2*pi/M in the NCO phase relative to the
-carrier. A slow third-order reference tracker (noise bandwidth a fraction of
-B_L, no steady error to a frequency ramp) follows the unwrapped NCO phase;
-its residual ``r`` carries the loop's jitter and, at a slip, a step of
-2*pi/M. When |r| exceeds 3/4 of 2*pi/M (the error has been carried most of
-the way to the neighbouring stable point) the reference jumps by 2*pi/M with
-it and a slip is declared. Noise excursions that return before that are not
-counted. The tracker runs only while locked, with a wider bandwidth for its
-first REF_SETTLE_WINDOWS lock windows so that it settles on the NCO's
-frequency and rate quickly; when lock is declared it starts
-at zero residual with the NCO's mean frequency over the last lock window and
-the frequency rate (the loop's own rate register in a 3rd-order loop, else
-the change of the mean frequency between the last two windows). Sign: +1 means the NCO phase advanced by 2*pi/M
-relative to the carrier (the output constellation turned by -2*pi/M).
-No transcendental function is needed: the tracker runs on the NCO steps.
+carrier. Two trackers watch for it, and the lock statistic of the last
+window chooses which one decides:
+
+- weak signal (statistic < STRONG_METRIC): a slow third-order reference
+  (noise bandwidth a fraction of B_L, no steady error to a frequency ramp)
+  follows the unwrapped NCO phase; its residual carries the loop's jitter
+  and, at a slip, a step of 2*pi/M. When the residual exceeds 3/4 of 2*pi/M
+  a slip is declared and the reference jumps with it. The reference runs only
+  while locked; it starts at zero residual on the NCO's mean frequency over the
+  last lock window and its frequency rate (the loop's rate register in a
+  3rd-order loop, else the change between the last two windows), and narrows
+  in stages (REF_STAGE_END windows) so that it settles quickly;
+- strong signal: the unwrapped angle of the low-passed detector phasor
+  d/|d| (which follows everything the loop follows) is compared with its
+  stable point 2*pi*k; a departure beyond 3*pi/2 is a slip. A residual
+  excursion of the reference then only means the loop followed a frequency
+  change: the reference is brought along without declaring anything.
+
+Noise excursions that return before the thresholds are not counted. Sign:
++1 means the NCO phase advanced by 2*pi/M relative to the carrier (the output
+constellation turned by -2*pi/M).
 """
 
 import numpy as np
@@ -83,7 +90,13 @@ S_FAST_M2 = 17   # fast exponential average of |x|^2 (level-step detector)
 S_WIN_STEPS = 18 # sum of NCO steps in this lock window, rad
 S_PREV_STEP = 19 # mean NCO step of the previous window, rad/sample
 S_REF_AGE = 20   # lock windows since the slip reference started
-STATE_SIZE = 21
+S_LP_RE = 21     # low-passed unit detector phasor d/|d| (strong-signal slip tracker)
+S_LP_IM = 22
+S_PSI = 23       # unwrapped angle of the low-passed phasor, rad (M domain)
+S_PSI_LAST = 24  # its last wrapped value
+S_PSI_REF = 25   # the detector angle's present stable point 2*pi*k, rad
+S_SLIP_POS = 26  # samples since the angle was last evaluated
+STATE_SIZE = 27
 
 # params[] layout ------------------------------------------------------------------
 P_K1 = 0
@@ -104,17 +117,21 @@ P_REF_G3 = 14
 P_SIG2_FLOOR = 15    # floor of (S/M2)^2: caps the detector-gain boost at low SNR
 P_START_MW = 16      # the loop closes once the moment weight reaches this (start-up)
 P_E_MAX = 17         # clip of the normalised detector output: K1 e_max = pi / M
-P_REF_FAST_G1 = 18   # slip reference gains for its first REF_SETTLE_WINDOWS windows
-P_REF_FAST_G2 = 19
-P_REF_FAST_G3 = 20
-PARAMS_SIZE = 21
+P_REF_STAGE_G = 18   # 3 gains per settling stage of the slip reference (REF_STAGES stages)
+REF_STAGES = 3
+P_LP_BETA = P_REF_STAGE_G + 3 * REF_STAGES    # low-pass coefficient of the detector phasor
+P_LP_DECIM = P_LP_BETA + 1                    # its angle is unwrapped every this many samples
+PARAMS_SIZE = P_LP_DECIM + 1
 
 LIMIT = 100.0                      # sample power limit relative to M2 (+20 dB)
 FAST_ALPHA = 1.0 / 64.0            # averaging coefficient of the level-step detector
 LEVEL_STEP = 4.0                   # a level change of 6 dB rescales the moments
 TWO_PI = 2.0 * np.pi
 SLIP_DEPARTURE = 0.75              # fraction of 2*pi/M that declares a slip
-REF_SETTLE_WINDOWS = 8             # windows the slip reference runs wide after lock
+#: the slip reference narrows in stages after lock: stage k lasts until this many windows
+REF_STAGE_END = (2.0, 6.0, 14.0)
+STRONG_METRIC = 0.5               # lock statistic above which the detector angle decides
+ANGLE_DEPARTURE = 1.5 * np.pi      # detector-angle departure (M domain) that is a slip
 
 
 def new_state():
@@ -162,11 +179,10 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     slow_g1 = params[P_REF_G1]
     slow_g2 = params[P_REF_G2]
     slow_g3 = params[P_REF_G3]
-    fast_g1 = params[P_REF_FAST_G1]
-    fast_g2 = params[P_REF_FAST_G2]
-    fast_g3 = params[P_REF_FAST_G3]
     slip_step = TWO_PI / power
     slip_threshold = SLIP_DEPARTURE * slip_step
+    lp_beta = params[P_LP_BETA]
+    lp_decim = params[P_LP_DECIM]
     inv_power = 1.0 / power
     sig2_floor = params[P_SIG2_FLOOR]
     start_mw = params[P_START_MW]
@@ -194,6 +210,12 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     win_steps = state[S_WIN_STEPS]
     prev_step = state[S_PREV_STEP]
     ref_age = state[S_REF_AGE]
+    lp_re = state[S_LP_RE]
+    lp_im = state[S_LP_IM]
+    psi = state[S_PSI]
+    psi_last = state[S_PSI_LAST]
+    psi_ref = state[S_PSI_REF]
+    slip_pos = state[S_SLIP_POS]
 
     want_ref = ref.shape[0] > 0
     want_freq = freq.shape[0] > 0
@@ -266,8 +288,11 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             # lock statistic: cos(M arg y) = Re(d)/|d|
             mag = np.sqrt(d.real * d.real + d.imag * d.imag)
             if mag > 0.0:
-                lock_sum += d.real / mag
+                ur = d.real / mag
+                lock_sum += ur
                 lock_n += 1.0
+                lp_re += lp_beta * (ur - lp_re)
+                lp_im += lp_beta * (d.imag / mag - lp_im)
             if want_err:
                 e_theta = np.arctan2(d.imag, d.real) * inv_power
         if want_ref:
@@ -280,24 +305,60 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
         if phase >= np.pi or phase < -np.pi:
             phase -= TWO_PI * np.floor((phase + np.pi) / TWO_PI)
 
-        # slip tracker (while locked): the reference follows the unwrapped NCO phase
+        # cycle slips. Two trackers, both updated every sample:
+        #  - the reference: a slow 3rd-order tracker of the unwrapped NCO phase (noise-proof,
+        #    decides while the signal is weak, metric < STRONG_METRIC);
+        #  - the detector angle: the unwrapped angle of the low-passed detector phasor (follows
+        #    whatever the loop follows, decides while the signal is strong).
         nco_step = last_step + acc1
         win_steps += nco_step
-        if locked > 0.0:
-            if ref_age < REF_SETTLE_WINDOWS:
-                g1, g2, g3 = fast_g1, fast_g2, fast_g3
-            else:
-                g1, g2, g3 = slow_g1, slow_g2, slow_g3
-            ref_a += g3 * ref_r
-            ref_f += g2 * ref_r + ref_a
-            ref_r += nco_step - g1 * ref_r - ref_f
-            if ref_r > slip_threshold or ref_r < -slip_threshold:
-                step = 1.0 if ref_r > 0.0 else -1.0
-                ref_r -= step * slip_step
+        strong = metric >= STRONG_METRIC
+        slip_pos += 1.0
+        if slip_pos >= lp_decim:
+            slip_pos = 0.0
+            a = np.arctan2(lp_im, lp_re)
+            da = a - psi_last
+            if da > np.pi:
+                da -= TWO_PI
+            elif da < -np.pi:
+                da += TWO_PI
+            psi += da
+            psi_last = a
+            dev = psi - psi_ref
+            if locked > 0.0 and strong and (dev > ANGLE_DEPARTURE or dev < -ANGLE_DEPARTURE):
+                step = -1.0 if dev > 0.0 else 1.0     # detector angle up = NCO fell behind
+                psi_ref -= step * TWO_PI
                 slips += step
                 slip_at[n_slips] = n
                 slip_count[n_slips] = int(step)
                 n_slips += 1
+            elif not (locked > 0.0 and strong):
+                psi_ref = TWO_PI * np.floor(psi / TWO_PI + 0.5)
+        if locked > 0.0:
+            g1, g2, g3 = slow_g1, slow_g2, slow_g3
+            for k in range(REF_STAGES):
+                if ref_age < REF_STAGE_END[k]:
+                    g1 = params[P_REF_STAGE_G + 3 * k]
+                    g2 = params[P_REF_STAGE_G + 3 * k + 1]
+                    g3 = params[P_REF_STAGE_G + 3 * k + 2]
+                    break
+            ref_a += g3 * ref_r
+            ref_f += g2 * ref_r + ref_a
+            ref_r += nco_step - g1 * ref_r - ref_f
+            if ref_r > slip_threshold or ref_r < -slip_threshold:
+                if strong:
+                    # the detector angle decides: the loop followed a frequency change
+                    # the slow reference had not, so bring the reference along
+                    ref_r = 0.0
+                    ref_f = acc1 + last_step
+                    ref_a = acc2
+                else:
+                    step = 1.0 if ref_r > 0.0 else -1.0
+                    ref_r -= step * slip_step
+                    slips += step
+                    slip_at[n_slips] = n
+                    slip_count[n_slips] = int(step)
+                    n_slips += 1
 
         # lock indicator: decide at the end of each window
         lock_pos += 1.0
@@ -348,4 +409,10 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_WIN_STEPS] = win_steps
     state[S_PREV_STEP] = prev_step
     state[S_REF_AGE] = ref_age
+    state[S_LP_RE] = lp_re
+    state[S_LP_IM] = lp_im
+    state[S_PSI] = psi
+    state[S_PSI_LAST] = psi_last
+    state[S_PSI_REF] = psi_ref
+    state[S_SLIP_POS] = slip_pos
     return n_slips

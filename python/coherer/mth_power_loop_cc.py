@@ -29,8 +29,11 @@ LOCK_P_FALSE = 1e-6
 UNLOCK_P_LEVEL = 1e-1
 #: Noise bandwidth of the slip tracker's reference, as a fraction of B_L.
 SLIP_REFERENCE_BW = 0.05
-#: ... and while it settles after lock is declared.
-SLIP_REFERENCE_SETTLE_BW = 0.25
+#: ... and in its settling stages after lock is declared (see _loop_kernel.REF_STAGE_END).
+SLIP_REFERENCE_STAGES_BW = (1.0, 0.4, 0.15)
+#: Low-pass coefficient, per unit B_L T, of the detector phasor whose angle decides slips
+#: while the signal is strong.
+SLIP_ANGLE_BETA_PER_BT = 2.0
 #: Most events remembered by acquisition_log() and lock_log().
 EVENT_LOG = 1000
 
@@ -167,8 +170,12 @@ class mth_power_loop_cc(gr.sync_block):
         p[K.P_LOCK_Z_OFF] = norm.isf(UNLOCK_P_LEVEL) / np.sqrt(2.0)
         p[K.P_REF_G1], p[K.P_REF_G2], p[K.P_REF_G3] = design.textbook_gains(
             3, SLIP_REFERENCE_BW * d.bt, 1.0)
-        p[K.P_REF_FAST_G1], p[K.P_REF_FAST_G2], p[K.P_REF_FAST_G3] = design.textbook_gains(
-            3, SLIP_REFERENCE_SETTLE_BW * d.bt, 1.0)
+        beta = min(0.5, SLIP_ANGLE_BETA_PER_BT * d.bt)
+        p[K.P_LP_BETA] = beta
+        p[K.P_LP_DECIM] = max(1, int(1.0 / (16.0 * beta)))
+        for k, fraction in enumerate(SLIP_REFERENCE_STAGES_BW):
+            p[K.P_REF_STAGE_G + 3 * k:K.P_REF_STAGE_G + 3 * k + 3] = design.textbook_gains(
+                3, fraction * d.bt, 1.0)
         s_min = max(MIN_SIGNAL_FRACTION, MAX_GAIN_BOOST ** (-2.0 / self._power))
         p[K.P_SIG2_FLOOR] = s_min * s_min
         p[K.P_START_MW] = 1.0 - (1.0 - p[K.P_ALPHA]) ** START_SAMPLES

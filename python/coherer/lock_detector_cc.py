@@ -178,6 +178,7 @@ class lock_detector_cc(gr.sync_block):
         lockstat.decide_windows(*bufs[:4], k, MIN_WINDOW, 0.5, 0.25, False, *bufs[4:], np.zeros(3, np.bool_))
 
     def start(self):
+        """Tags carry the block's alias (its GRC id) as source id."""
         self._srcid = pmt.intern(self.alias())
         return True
 
@@ -201,12 +202,15 @@ class lock_detector_cc(gr.sync_block):
         return self._esn0_db
 
     def lock_threshold(self):
+        """Metric at or above which lock is declared."""
         return self._lock_thr
 
     def unlock_threshold(self):
+        """Metric below which a declared lock is dropped."""
         return self._unlock_thr
 
     def window(self):
+        """Samples per decision."""
         return self._window
 
     # --- streaming -------------------------------------------------------------------

@@ -35,7 +35,9 @@ def count_true_slips(theta, ref, power, start=0):
     """Slips of 2*pi/M counted against the known carrier phase, with the same
     3*pi/2 hysteresis in the M domain as the definition of a slip. Returns the
     sample indices (>= start) at which each slip completed its departure."""
-    psi = np.unwrap(power * (np.asarray(theta) - np.angle(ref)))
+    # theta is the true, unwrapped carrier phase; the NCO phase moves by far less than pi
+    # per sample, so unwrapping it alone is exact (a phase hit in theta stays visible)
+    psi = power * (np.asarray(theta) - np.unwrap(np.angle(ref)))
     times = []
     centre = 2 * np.pi * np.round(psi[start] / (2 * np.pi))
     for i in range(start, len(psi)):

@@ -180,3 +180,19 @@ def test_third_order_loop_follows_low_orbit_doppler_without_slips():
     assert not [o for o, _ in run.tags_with("cycle_slip") if o >= settle]
     second = coherer.design.design_loop(FS, 4, 30.0, 0.707, 2)
     assert second.ramp_phase_error(-35.0) < -0.05        # what the third order removes
+
+
+def test_frequency_step_the_loop_follows_is_not_a_slip():
+    # A +5 Hz oscillator step at 9.6 kS/s with B_L = 20 Hz: the second-order loop's phase
+    # transient peaks well below pi/M (about Delta-omega / (2 wn), REFERENCES 2.2 pull-out is
+    # ~3 wn), so the truth has no slip and no slip may be reported.
+    fs = 9600.0
+    n = int(12 * fs)
+    t = np.arange(n) / fs
+    theta = 0.3 + 2 * np.pi * (800 * t + 5.0 * np.maximum(t - 6, 0))
+    rng = np.random.default_rng(97)
+    x, _ = mpsk(rng, 2, n, 12, theta)
+    run = run_loop(x, power=2, sample_rate=fs, noise_bw_hz=20.0)
+    assert len(count_true_slips(theta, run.ref, 2, start=int(2 * fs))) == 0
+    assert run.tags_with("cycle_slip") == []
+

@@ -8,10 +8,8 @@ import numpy as np
 import pmt
 from gnuradio import gr
 
-from scipy.stats import norm
-
 from . import _loop_kernel as K
-from . import acquisition, design, metadata
+from . import acquisition, design, lockstat, metadata
 
 #: Default averaging length of the signal-power (M2M4) estimator, samples:
 #: at least this many, and at least AVERAGING_PER_BT / (B_L T).
@@ -166,8 +164,9 @@ class mth_power_loop_cc(gr.sync_block):
         p[K.P_ALPHA] = 1.0 / max(MIN_AVERAGING, AVERAGING_PER_BT / d.bt)
         p[K.P_STEP_IN_FREQ] = 1.0 if loop_order == 1 else 0.0
         p[K.P_LOCK_WINDOW] = self._lock_window
-        p[K.P_LOCK_Z_ON] = norm.isf(LOCK_P_FALSE) / np.sqrt(2.0)
-        p[K.P_LOCK_Z_OFF] = norm.isf(UNLOCK_P_LEVEL) / np.sqrt(2.0)
+        # thresholds for one sample; the kernel divides by sqrt(valid samples in the window)
+        p[K.P_LOCK_Z_ON] = lockstat.false_lock_threshold(1, LOCK_P_FALSE)
+        p[K.P_LOCK_Z_OFF] = lockstat.false_lock_threshold(1, UNLOCK_P_LEVEL)
         p[K.P_REF_G1], p[K.P_REF_G2], p[K.P_REF_G3] = design.textbook_gains(
             3, SLIP_REFERENCE_BW * d.bt, 1.0)
         beta = min(0.5, SLIP_ANGLE_BETA_PER_BT * d.bt)

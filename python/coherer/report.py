@@ -175,7 +175,7 @@ def plot_timeline(result, path, truth=None, title=None):
                 label="true Es/N0 (scenario)")
     ax.set_ylabel("Es/N0 (dB)")
     ax.set_xlabel("time (s)")
-    ax.set_title("Signal quality")
+    ax.set_title("Signal quality: M2M4 Es/N0 per window (values below -20 dB drawn at -20 dB)")
     ax.legend(loc="lower right", fontsize=8)
     ax.grid(alpha=0.3)
     fig.savefig(path, dpi=100)

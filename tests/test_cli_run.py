@@ -227,9 +227,9 @@ def test_forced_slip_is_reported(tmp_path):
 # --- report -------------------------------------------------------------------------------------
 
 def test_report_plots_and_summary(tmp_path):
-    meta = write_sigmf(tmp_path, "pass", encode(bpsk(seed=15), "cf32_le"))
+    write_sigmf(tmp_path, "pass", encode(bpsk(seed=15), "cf32_le"))
     report = tmp_path / "report"
-    proc = coherer("run", meta, *LOOP, "--report", report)
+    proc = coherer("run", tmp_path / "pass", *LOOP, "--report", report)     # base name: SigMF pair
     assert proc.returncode == 0, proc.stderr
     for png in ("timeline.png", "constellation.png"):
         head = (report / png).read_bytes()[:8]

@@ -283,6 +283,9 @@ def open_recording(path, sample_rate=None, fmt_name=None):
     """Open ``path`` as a raw file when ``sample_rate`` or ``fmt_name`` is given (both are
     then required), else as a SigMF recording."""
     if sample_rate is None and fmt_name is None:
+        for ext in (".sigmf-meta", ".sigmf"):      # a base name without extension
+            if not is_sigmf_path(path) and Path(f"{path}{ext}").is_file():
+                path = Path(f"{path}{ext}")
         if not is_sigmf_path(path):
             raise RecordingError(f"{path}: not a SigMF recording (.sigmf-meta, .sigmf-data or .sigmf); "
                                  "a raw file needs --sample-rate and --format")

@@ -29,6 +29,9 @@ from .mth_power_loop_cc import mth_power_loop_cc
 MAX_TRACE_POINTS = 200_000
 #: Aim for at most about this many status points over a recording.
 MAX_STATUS_POINTS = 20_000
+#: A flowgraph whose collector sees no new sample for this long has failed (s): a block
+#: whose work() raised leaves the flowgraph waiting forever.
+STALL_TIMEOUT_S = 60.0
 
 
 @dataclass(frozen=True)
@@ -292,9 +295,16 @@ def run_receiver(rec, settings, progress=None):
     tb.start()
     waiter = threading.Thread(target=lambda: (tb.wait(), finished.set()), daemon=True)
     waiter.start()
+    last, last_change = -1, time.monotonic()
+    stalled = False
     try:
         while not finished.wait(0.2):
             if sink.error is not None:
+                break
+            if sink.progress != last:
+                last, last_change = sink.progress, time.monotonic()
+            elif time.monotonic() - last_change > STALL_TIMEOUT_S:
+                stalled = True        # a block's thread died (an exception in work())
                 break
             if progress is not None:
                 progress(sink.progress, total)
@@ -304,6 +314,9 @@ def run_receiver(rec, settings, progress=None):
             finished.wait()
     if sink.error is not None:
         raise ReceiverError(f"collector failed: {sink.error!r}")
+    if stalled:
+        raise ReceiverError(f"the flowgraph made no progress for {STALL_TIMEOUT_S:g} s "
+                            f"(at sample {sink.progress} of {total}); see GNU Radio's log on stderr")
     # the detector releases whole windows only: a last partial window is not processed
     processed = sink.progress
     if progress is not None:

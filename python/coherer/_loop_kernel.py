@@ -68,6 +68,8 @@ constellation turned by -2*pi/M).
 import numpy as np
 from numba import njit
 
+from ._numeric import int_power
+
 # state[] layout -------------------------------------------------------------------
 S_PHASE = 0      # theta^, rad, wrapped to [-pi, pi)
 S_FREQ = 1       # acc1: NCO frequency register, rad/sample
@@ -137,19 +139,6 @@ ANGLE_DEPARTURE = 1.5 * np.pi      # detector-angle departure (M domain) that is
 def new_state():
     """A fresh state array: NCO at 0 rad and 0 rad/sample, no moments yet, unlocked."""
     return np.zeros(STATE_SIZE, dtype=np.float64)
-
-
-@njit(cache=True, inline="always")
-def _cpow(z, m):
-    """z**m for a positive integer m by repeated squaring."""
-    result = 1.0 + 0.0j
-    base = z
-    while m > 0:
-        if m & 1:
-            result *= base
-        base *= base
-        m >>= 1
-    return result
 
 
 @njit(nogil=True, cache=True)
@@ -265,7 +254,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             sig2 = 2.0 - (m4 / mw) / (mm2 * mm2)   # (S / M2)^2 from M2M4
             if sig2 < sig2_floor:
                 sig2 = sig2_floor
-            d = _cpow(y * (1.0 / np.sqrt(mm2)), power) * rot
+            d = int_power(y * (1.0 / np.sqrt(mm2)), power) * rot
             e = d.imag / sig2 ** quarter_power   # / (S/M2)^(M/2): mean sin(M phi)
             if mw < start_mw:
                 e = 0.0                          # start-up: moments not settled yet, coast

@@ -53,6 +53,8 @@ import numpy as np
 from numba import njit, vectorize
 from scipy import special, stats
 
+from ._numeric import int_power
+
 #: Per-window false-lock probability the default lock threshold is set for.
 DEFAULT_LOCK_P_FA = 1e-6
 #: Per-window probability that noise alone holds a declared lock (default unlock threshold).
@@ -185,28 +187,15 @@ def esn0_db(esn0):
 # --- numba kernels ----------------------------------------------------------------
 
 @njit(cache=True, inline="always")
-def _unit_power(u, m):
-    """u**m for a positive integer m by repeated squaring."""
-    result = 1.0 + 0.0j
-    base = u
-    while m > 0:
-        if m & 1:
-            result *= base
-        base *= base
-        m >>= 1
-    return result
-
-
-@njit(cache=True, inline="always")
 def _projection(zr, zi, p, power, rot):
     """``Re((z/|z|)^M rot)`` for a sample with power ``p = |z|^2 > 0`` (finite).
     Even M squares first (one reciprocal, no square root): ``(z/|z|)^2 = z^2 / p``."""
     if power % 2 == 0:
         inv = 1.0 / p
-        u = _unit_power(complex((zr * zr - zi * zi) * inv, 2.0 * zr * zi * inv), power // 2)
+        u = int_power(complex((zr * zr - zi * zi) * inv, 2.0 * zr * zi * inv), power // 2)
     else:
         r = 1.0 / np.sqrt(p)
-        u = _unit_power(complex(zr * r, zi * r), power)
+        u = int_power(complex(zr * r, zi * r), power)
     return u.real * rot.real - u.imag * rot.imag
 
 

@@ -110,8 +110,6 @@ def test_demo_phase_error_rms_agrees_with_theory(demo, scenario):
         assert abs(esn0["measured"] - st.esn0_db) <= 0.5, esn0
 
 
-@pytest.mark.xfail(reason="loop slip tracker under rework: false periodic slips / missed slips "
-                          "(see SLIP_TRACKER_XFAIL in test_cli_run.py)", strict=False)
 def test_demo_slips_agree_with_truth(demo, scenario):
     """The loop must declare the slips it actually made at the oscillator jump (the change
     of the true phase error in units of 2 pi/M, measured by the demo from the loop's

@@ -95,12 +95,6 @@ def validate_sigmf(meta_path):
 
 # --- each format finds the lock interval, the offset and Es/N0 ---------------------------------
 
-# The loop's slip tracker is being reworked (mth_power_loop_cc): at commit 0d505f5 it
-# declares periodic false slips after acquisition, and some builds since miss real ones.
-# The slip expectations below are the issue's acceptance; until the tracker settles they
-# are reported as xfail/xpass rather than failing the suite. Remove the marker then.
-SLIP_TRACKER_XFAIL = pytest.mark.xfail(
-    reason="loop slip tracker under rework: false periodic slips / missed slips", strict=False)
 
 
 
@@ -154,7 +148,6 @@ def test_run_each_format_finds_interval_offset_and_esn0(tmp_path, fmt):
     assert any(ln.startswith("locked ") for ln in lines)
 
 
-@SLIP_TRACKER_XFAIL
 def test_steady_carrier_reports_no_slip(tmp_path):
     """A constant offset at Es/N0 10 dB: loop SNR 1/(B_L T V_2) = 1/(0.0025 * 0.42) = 950, so
     Viterbi's mean time to a slip pi^2 rho I0(rho)^2 / (2 B_L) (REFERENCES 5, formula from
@@ -203,7 +196,6 @@ def test_sigmf_archive(tmp_path):
     assert "--annotate" in one_error_line(proc)
 
 
-@SLIP_TRACKER_XFAIL
 def test_forced_slip_is_reported(tmp_path):
     """A +15 Hz carrier frequency step at 3 s, far beyond the pull-out range of a
     B_L = 20 Hz squaring loop (Gardner's pull-out 1.8 wn (zeta + 1) is about 116 rad/s in the

@@ -42,10 +42,10 @@ counted from the start of the stream; on noise it has mean 0 and variance
 ``z = Qinv(P_FA)/sqrt(2)`` gives an exact false-lock probability.
 
 Cycle slips: a slip is a step of 2*pi/M in the NCO phase relative to the
-carrier. Two trackers watch for it, and the lock statistic of the last
-window chooses which one decides:
+carrier. Two trackers watch for it, and the loop SNR 1/(B_L T V_M) estimated from
+the moments over the last lock window chooses which one decides:
 
-- weak signal (statistic < STRONG_METRIC): a slow third-order reference
+- weak signal (loop SNR < STRONG_LOOP_SNR): a slow third-order reference
   (noise bandwidth a fraction of B_L, no steady error to a frequency ramp)
   follows the unwrapped NCO phase; its residual carries the loop's jitter
   and, at a slip, a step of 2*pi/M. When the residual exceeds 3/4 of 2*pi/M
@@ -54,9 +54,12 @@ window chooses which one decides:
   last lock window and its frequency rate (the loop's rate register in a
   3rd-order loop, else the change between the last two windows), and narrows
   in stages (REF_STAGE_END windows) so that it settles quickly;
-- strong signal: the unwrapped angle of the low-passed detector phasor
+- strong signal (slips from noise alone are then vanishingly rare, so the
+  slips that matter come from dynamics): the unwrapped angle of the low-passed detector phasor
   d/|d| (which follows everything the loop follows) is compared with its
-  stable point 2*pi*k; a departure beyond 3*pi/2 is a slip. A residual
+  stable point 2*pi*k; a departure beyond 3*pi/2 is a slip, provided the
+  phasor still stands 4 noise standard deviations (sqrt(beta/4) each) out of
+  the noise, so that a carrier that has just vanished does not count. A residual
   excursion of the reference then only means the loop followed a frequency
   change: the reference is brought along without declaring anything.
 
@@ -98,7 +101,8 @@ S_PSI = 23       # unwrapped angle of the low-passed phasor, rad (M domain)
 S_PSI_LAST = 24  # its last wrapped value
 S_PSI_REF = 25   # the detector angle's present stable point 2*pi*k, rad
 S_SLIP_POS = 26  # samples since the angle was last evaluated
-STATE_SIZE = 27
+S_STRONG = 27    # 1.0 when the last window's loop SNR was at least STRONG_LOOP_SNR
+STATE_SIZE = 28
 
 # params[] layout ------------------------------------------------------------------
 P_K1 = 0
@@ -123,7 +127,8 @@ P_REF_STAGE_G = 18   # 3 gains per settling stage of the slip reference (REF_STA
 REF_STAGES = 3
 P_LP_BETA = P_REF_STAGE_G + 3 * REF_STAGES    # low-pass coefficient of the detector phasor
 P_LP_DECIM = P_LP_BETA + 1                    # its angle is unwrapped every this many samples
-PARAMS_SIZE = P_LP_DECIM + 1
+P_BT = P_LP_DECIM + 1                         # B_L T of the loop (for the loop-SNR estimate)
+PARAMS_SIZE = P_BT + 1
 
 LIMIT = 100.0                      # sample power limit relative to M2 (+20 dB)
 FAST_ALPHA = 1.0 / 64.0            # averaging coefficient of the level-step detector
@@ -132,13 +137,32 @@ TWO_PI = 2.0 * np.pi
 SLIP_DEPARTURE = 0.75              # fraction of 2*pi/M that declares a slip
 #: the slip reference narrows in stages after lock: stage k lasts until this many windows
 REF_STAGE_END = (2.0, 6.0, 14.0)
-STRONG_METRIC = 0.5               # lock statistic above which the detector angle decides
+STRONG_LOOP_SNR = 10.0            # loop SNR 1/(B_L T V_M) above which the detector angle decides
 ANGLE_DEPARTURE = 1.5 * np.pi      # detector-angle departure (M domain) that is a slip
+LP_NOISE_FLOOR = 4.0               # |low-passed phasor|^2 must exceed this * beta: 4 noise std
 
 
 def new_state():
     """A fresh state array: NCO at 0 rad and 0 rad/sample, no moments yet, unlocked."""
     return np.zeros(STATE_SIZE, dtype=np.float64)
+
+
+@njit(cache=True)
+def loop_snr(m2, m4, power, bt):
+    """Loop SNR ``1/(B_L T V_M)`` (REFERENCES 5) from the moments |x|^2, |x|^4 (M2M4 SNR)."""
+    r2 = 2.0 - m4 / (m2 * m2)                 # (S/M2)^2
+    if r2 <= 0.0:
+        return 0.0
+    r = np.sqrt(r2)
+    if r >= 1.0:
+        return np.inf
+    s2 = (1.0 - r) / r                         # N/S = 1/(Es/N0)
+    v = 0.0
+    coef = 1.0
+    for k in range(1, power + 1):              # V_M = sum_k C(M,k)^2 k! s2^k
+        coef *= (power - k + 1) * (power - k + 1) / k
+        v += coef * s2 ** k
+    return 1.0 / (bt * v)
 
 
 @njit(nogil=True, cache=True)
@@ -171,6 +195,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     slip_step = TWO_PI / power
     slip_threshold = SLIP_DEPARTURE * slip_step
     lp_beta = params[P_LP_BETA]
+    bt = params[P_BT]
     lp_decim = params[P_LP_DECIM]
     inv_power = 1.0 / power
     sig2_floor = params[P_SIG2_FLOOR]
@@ -205,6 +230,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     psi_last = state[S_PSI_LAST]
     psi_ref = state[S_PSI_REF]
     slip_pos = state[S_SLIP_POS]
+    strong = state[S_STRONG] > 0.0
 
     want_ref = ref.shape[0] > 0
     want_freq = freq.shape[0] > 0
@@ -301,7 +327,6 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
         #    whatever the loop follows, decides while the signal is strong).
         nco_step = last_step + acc1
         win_steps += nco_step
-        strong = metric >= STRONG_METRIC
         slip_pos += 1.0
         if slip_pos >= lp_decim:
             slip_pos = 0.0
@@ -314,7 +339,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             psi += da
             psi_last = a
             dev = psi - psi_ref
-            if locked > 0.0 and strong and (dev > ANGLE_DEPARTURE or dev < -ANGLE_DEPARTURE):
+            coherent = lp_re * lp_re + lp_im * lp_im > LP_NOISE_FLOOR * lp_beta
+            if (locked > 0.0 and strong and coherent
+                    and (dev > ANGLE_DEPARTURE or dev < -ANGLE_DEPARTURE)):
                 step = -1.0 if dev > 0.0 else 1.0     # detector angle up = NCO fell behind
                 psi_ref -= step * TWO_PI
                 slips += step
@@ -373,6 +400,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             lock_sum = 0.0
             lock_n = 0.0
             lock_pos = 0.0
+            if mw > 0.0:
+                strong = loop_snr(m2 / mw, m4 / mw, power, bt) >= STRONG_LOOP_SNR
     while next_mark < n_marks:
         mark_freq[next_mark] = acc1 + step_in_freq * last_step
         next_mark += 1
@@ -404,4 +433,5 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_PSI_LAST] = psi_last
     state[S_PSI_REF] = psi_ref
     state[S_SLIP_POS] = slip_pos
+    state[S_STRONG] = 1.0 if strong else 0.0
     return n_slips

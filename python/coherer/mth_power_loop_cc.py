@@ -172,6 +172,7 @@ class mth_power_loop_cc(gr.sync_block):
         beta = min(0.5, SLIP_ANGLE_BETA_PER_BT * d.bt)
         p[K.P_LP_BETA] = beta
         p[K.P_LP_DECIM] = max(1, int(1.0 / (16.0 * beta)))
+        p[K.P_BT] = d.bt
         for k, fraction in enumerate(SLIP_REFERENCE_STAGES_BW):
             p[K.P_REF_STAGE_G + 3 * k:K.P_REF_STAGE_G + 3 * k + 3] = design.textbook_gains(
                 3, fraction * d.bt, 1.0)

@@ -7,9 +7,11 @@ the events (lock, unlock, cycle slip), the per-window status (lock metric,
 Es/N0), per-interval statistics, and decimated traces for the plots. Nothing
 here prints: progress is reported through a callback.
 
-The lock detector decides what "locked" means for the events: cycle slips the
-loop declares while the detector says unlocked (the carrier is gone or not yet
-acquired, so there is no phase to slip against) are counted, not listed.
+The lock detector decides what "locked" means for the lock/unlock events. Every
+cycle slip the loop declares is listed (the loop only declares slips while its
+own lock indicator says locked); those that fall where the detector says
+unlocked (typically while a large frequency step is pulled in) are also counted
+separately in the summary.
 """
 
 import threading
@@ -95,7 +97,7 @@ class _collector(gr.sync_block):
         self.intervals = []
         self._open = None             # the Interval being accumulated while locked
         self._trace = {"sample": [], "before": [], "after": [], "freq": [], "phase": []}
-        self.slips_outside_lock = 0   # loop slip tags while the detector said unlocked
+        self.slips_outside_lock = 0   # loop slip tags (listed) while the detector said unlocked
         self.progress = 0
         self.error = None             # first exception caught in work(), if any
 
@@ -129,9 +131,8 @@ class _collector(gr.sync_block):
                 pos = rel
                 self._on_lock_change(offset, bool(pmt.to_bool(value)), float(freq[rel]))
             elif key == metadata.CYCLE_SLIP:
-                if self._open is None:    # detector unlocked: no carrier phase to slip against
+                if self._open is None:    # the loop was locked, the detector already not
                     self.slips_outside_lock += 1
-                    continue
                 self.events.append({"event": "cycle_slip", "sample": int(offset),
                                     "time_s": offset / self._fs, "freq_hz": float(freq[rel]),
                                     "slips": int(pmt.to_long(value))})
@@ -209,7 +210,7 @@ class RunResult:
     thresholds: tuple                #: (lock, unlock) thresholds of the detector
     loop_design: object              #: :class:`coherer.design.LoopDesign`
     wall_s: float
-    slips_outside_lock: int = 0      #: loop slip tags dropped: the detector said unlocked
+    slips_outside_lock: int = 0      #: listed slips that fell where the detector said unlocked
 
     def interval_summaries(self):
         rec = self.recording

@@ -96,6 +96,7 @@ def test_c_reference_computes_the_same_loop(reference_exe, tmp_path, power, orde
     x = stream.psk_stream(power, 1 << 17, seed=10 + power)
     x[20000:20050] = 0                     # a gap: both coast
     x[30000] = np.nan
+    x[60000:] *= 3.0                       # a 9.5 dB level step: both rescale the moments
     path = tmp_path / "in.cf32"
     stream.write_cf32(path, x)
     blk = mth_power_loop_cc(SAMPLE_RATE, power, NOISE_BW_HZ, loop_order=order, acquire=False)

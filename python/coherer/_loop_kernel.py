@@ -66,6 +66,21 @@ the moments over the last lock window chooses which one decides:
 Noise excursions that return before the thresholds are not counted. Sign:
 +1 means the NCO phase advanced by 2*pi/M relative to the carrier (the output
 constellation turned by -2*pi/M).
+
+Arithmetic (no per-sample transcendental function, pow, sqrt or division on the
+loop's path): the NCO keeps the phasors ``P = e^{j theta^}`` and ``P^M`` and
+advances them by complex multiplication with ``e^{j v}`` (``v`` the step relative
+to the frequency register at the last resync, a small angle, evaluated by a short
+series; libm beyond ``SMALL_ANGLE``); both are recomputed exactly from the float64
+phase accumulator every ``NCO_RESYNC`` samples of the stream, so neither phase nor
+magnitude can drift (worst case between resyncs: about 1e-12). The detector is
+``d = z conj(P^M)`` with ``z = (x_lim / sqrt(M2))^M e^{-j M point_angle}``, which
+does not depend on the NCO. The normalisation (1/sqrt(M2), (S/M2)^(M/2), limiter
+level) is recomputed from the moments every ``NORM_BLOCK`` samples once they have
+settled (every sample before): the moments are exponential averages over
+thousands of samples, so in between they move by about NORM_BLOCK / (averaging
+length), 0.1 % for 16384. All of this is state, so results do not depend on how
+the stream is chunked.
 """
 
 import numpy as np
@@ -102,7 +117,17 @@ S_PSI_LAST = 24  # its last wrapped value
 S_PSI_REF = 25   # the detector angle's present stable point 2*pi*k, rad
 S_SLIP_POS = 26  # samples since the angle was last evaluated
 S_STRONG = 27    # 1.0 when the last window's loop SNR was at least STRONG_LOOP_SNR
-STATE_SIZE = 28
+S_PH_RE = 28     # NCO phasor e^{j theta^} (recursion between exact resyncs)
+S_PH_IM = 29
+S_PM_RE = 30     # its M-th power e^{j M theta^}, advanced alongside
+S_PM_IM = 31
+S_NCO_REF = 32   # frequency register (rad/sample) at the last resync
+S_NCO_LEFT = 33  # samples until the next exact resync
+S_NORM_LEFT = 34 # samples until the detector normalisation is recomputed
+S_INV_RMS = 35   # 1/sqrt(M2) in use, 1/amplitude
+S_INV_NORM = 36  # 1/(S/M2)^(M/2) in use
+S_CAP = 37       # limiter threshold in use, power units (0: no moments yet)
+STATE_SIZE = 38
 
 # params[] layout ------------------------------------------------------------------
 P_K1 = 0
@@ -134,6 +159,10 @@ LIMIT = 100.0                      # sample power limit relative to M2 (+20 dB)
 FAST_ALPHA = 1.0 / 64.0            # averaging coefficient of the level-step detector
 LEVEL_STEP = 4.0                   # a level change of 6 dB rescales the moments
 TWO_PI = 2.0 * np.pi
+NCO_RESYNC = 256                   # phasors recomputed exactly from the phase every this many samples
+SMALL_ANGLE = 2.0 ** -5            # series rotation for |angle| <= this (error < 6e-15 per step)
+NORM_BLOCK = 16                    # detector normalisation recomputed every this many samples...
+MW_SETTLED = 0.5                   # ...and every sample while the moment weight is below this
 SLIP_DEPARTURE = 0.75              # fraction of 2*pi/M that declares a slip
 #: the slip reference narrows in stages after lock: stage k lasts until this many windows
 REF_STAGE_END = (2.0, 6.0, 14.0)
@@ -165,7 +194,37 @@ def loop_snr(m2, m4, power, bt):
     return 1.0 / (bt * v)
 
 
-@njit(nogil=True, cache=True)
+@njit(cache=True, inline="always")
+def _rotate(q_re, q_im, v):
+    """q e^{j v}: a short series for |v| <= SMALL_ANGLE (cos to v^6, error < 3e-17;
+    sin to v^5, error < 6e-15), libm beyond."""
+    if -SMALL_ANGLE <= v <= SMALL_ANGLE:
+        v2 = v * v
+        c = 1.0 - v2 * (0.5 - v2 * (1.0 / 24.0 - v2 * (1.0 / 720.0)))
+        s = v * (1.0 - v2 * (1.0 / 6.0 - v2 * (1.0 / 120.0)))
+    else:
+        c = np.cos(v)
+        s = np.sin(v)
+    return q_re * c - q_im * s, q_re * s + q_im * c
+
+
+@njit(cache=True, inline="always")
+def _half_power(u, m):
+    """u^(m/2) for u >= 0 and a positive integer m: repeated squaring, one sqrt if m is odd."""
+    result = 1.0
+    base = u
+    k = m >> 1
+    while k > 0:
+        if k & 1:
+            result *= base
+        base *= base
+        k >>= 1
+    if m & 1:
+        result *= np.sqrt(u)
+    return result
+
+
+@njit(nogil=True, cache=True, fastmath={'contract'})
 def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count, state, params, power):
     """Run the loop over ``x`` (complex64), writing the corrected samples to ``out``.
 
@@ -201,7 +260,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     sig2_floor = params[P_SIG2_FLOOR]
     start_mw = params[P_START_MW]
     e_max = params[P_E_MAX]
-    quarter_power = 0.25 * power
+    k_step = k1 + k2 + k3               # d(NCO step)/de while nothing clips or clamps
 
     phase = state[S_PHASE]
     acc1 = state[S_FREQ]
@@ -221,6 +280,20 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     ref_a = state[S_REF_A]
     slips = state[S_SLIPS]
     fast_m2 = state[S_FAST_M2]
+    ph_re = state[S_PH_RE]
+    ph_im = state[S_PH_IM]
+    pm_re = state[S_PM_RE]
+    pm_im = state[S_PM_IM]
+    nco_ref = state[S_NCO_REF]
+    nco_left = state[S_NCO_LEFT]
+    rf_re = np.cos(nco_ref)
+    rf_im = np.sin(nco_ref)
+    rm_re = np.cos(power * nco_ref)
+    rm_im = np.sin(power * nco_ref)
+    norm_left = state[S_NORM_LEFT]
+    inv_rms = state[S_INV_RMS]
+    inv_norm = state[S_INV_NORM]
+    cap = state[S_CAP]
     win_steps = state[S_WIN_STEPS]
     prev_step = state[S_PREV_STEP]
     ref_age = state[S_REF_AGE]
@@ -243,8 +316,27 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
         while next_mark < n_marks and marks[next_mark] == n:
             mark_freq[next_mark] = acc1 + step_in_freq * last_step
             next_mark += 1
-        c = np.cos(phase)
-        s = np.sin(phase)
+        if nco_left <= 0.0:
+            # exact resync every NCO_RESYNC samples of the stream: no drift in phase or magnitude
+            ph_re = np.cos(phase)
+            ph_im = np.sin(phase)
+            pm_re = np.cos(power * phase)
+            pm_im = np.sin(power * phase)
+            nco_ref = acc1
+            rf_re = np.cos(nco_ref)
+            rf_im = np.sin(nco_ref)
+            rm_re = np.cos(power * nco_ref)
+            rm_im = np.sin(power * nco_ref)
+            nco_left = NCO_RESYNC
+        nco_left -= 1.0
+        norm_left -= 1.0
+        c = ph_re
+        s = ph_im
+        # the next phasors up to this sample's correction (known before the detector)
+        q_re = ph_re * rf_re - ph_im * rf_im
+        q_im = ph_re * rf_im + ph_im * rf_re
+        qm_re = pm_re * rm_re - pm_im * rm_im
+        qm_im = pm_re * rm_im + pm_im * rm_re
         xr = np.float64(x[n].real)
         xi = np.float64(x[n].imag)
         p = xr * xr + xi * xi
@@ -254,60 +346,74 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             out[n] = 0.0
             gaps += 1.0
             last_step = 0.0
+            v = acc1 - nco_ref
         else:
-            y = complex(xr * c + xi * s, xi * c - xr * s)
-            out[n] = y
+            out[n] = complex(xr * c + xi * s, xi * c - xr * s)
             # limiter against spikes (only once the moments exist)
+            scale = 1.0
             if mw > 0.0:
-                cap = LIMIT * m2 / mw
                 if p > cap:
-                    y *= np.sqrt(cap / p)
+                    scale = np.sqrt(cap / p)
                     p = cap
                 # a lasting level step of 20 dB or more (fade, gain change): rescale
                 # the moments at once, keeping the SNR they estimate
                 fast_m2 += FAST_ALPHA * (p - fast_m2)
-                level = fast_m2 * mw / m2
-                if level > LEVEL_STEP or level < 1.0 / LEVEL_STEP:
+                fw = fast_m2 * mw
+                if fw > LEVEL_STEP * m2 or fw * LEVEL_STEP < m2:
+                    level = fw / m2
                     m2 *= level
                     m4 *= level * level
+                    norm_left = 0.0
             else:
                 fast_m2 = p
             # M2M4 moments; detector on the power-normalised sample
             m2 += alpha * (p - m2)
             m4 += alpha * (p * p - m4)
             mw += alpha * (1.0 - mw)
-            mm2 = m2 / mw
-            sig2 = 2.0 - (m4 / mw) / (mm2 * mm2)   # (S / M2)^2 from M2M4
-            if sig2 < sig2_floor:
-                sig2 = sig2_floor
-            d = int_power(y * (1.0 / np.sqrt(mm2)), power) * rot
-            e = d.imag / sig2 ** quarter_power   # / (S/M2)^(M/2): mean sin(M phi)
+            if norm_left <= 0.0 or mw < MW_SETTLED:
+                mm2 = m2 / mw
+                sig2 = 2.0 - (m4 / mw) / (mm2 * mm2)   # (S / M2)^2 from M2M4
+                if sig2 < sig2_floor:
+                    sig2 = sig2_floor
+                inv_rms = 1.0 / np.sqrt(mm2)
+                inv_norm = 1.0 / _half_power(np.sqrt(sig2), power)   # 1 / (S/M2)^(M/2)
+                cap = LIMIT * mm2
+                norm_left = NORM_BLOCK
+            # detector d = (y_lim/sqrt(M2))^M e^{-j M point_angle} = z conj(P^M)
+            g = scale * inv_rms
+            z = int_power(complex(xr * g, xi * g), power) * rot
+            d = complex(z.real * pm_re + z.imag * pm_im, z.imag * pm_re - z.real * pm_im)
+            e = d.imag * inv_norm                # / (S/M2)^(M/2): mean sin(M phi)
             if mw < start_mw:
                 e = 0.0                          # start-up: moments not settled yet, coast
             elif e > e_max:
                 e = e_max
             elif e < -e_max:
                 e = -e_max
+            v = k_step * e + (acc1 + acc2 - nco_ref)   # this sample's step minus nco_ref
             acc2 += k3 * e
             acc1 += k2 * e + acc2
             if acc1 > fmax:
                 acc1 = fmax
                 if acc2 > 0.0:
                     acc2 = 0.0
+                v = k1 * e + acc1 - nco_ref
             elif acc1 < fmin:
                 acc1 = fmin
                 if acc2 < 0.0:
                     acc2 = 0.0
+                v = k1 * e + acc1 - nco_ref
             last_step = k1 * e
             phase += last_step
             # lock statistic: cos(M arg y) = Re(d)/|d|
-            mag = np.sqrt(d.real * d.real + d.imag * d.imag)
+            mag = _half_power(p * inv_rms * inv_rms, power)   # |d| = (p/M2)^(M/2)
             if mag > 0.0:
-                ur = d.real / mag
+                inv_mag = 1.0 / mag
+                ur = d.real * inv_mag
                 lock_sum += ur
                 lock_n += 1.0
                 lp_re += lp_beta * (ur - lp_re)
-                lp_im += lp_beta * (d.imag / mag - lp_im)
+                lp_im += lp_beta * (d.imag * inv_mag - lp_im)
             if want_err:
                 e_theta = np.arctan2(d.imag, d.real) * inv_power
         if want_ref:
@@ -317,6 +423,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
         if want_err:
             err[n] = e_theta
         phase += acc1
+        # advance the phasors by this sample's step (e^{j nco_ref} is already in q, qm)
+        ph_re, ph_im = _rotate(q_re, q_im, v)
+        pm_re, pm_im = _rotate(qm_re, qm_im, power * v)
         if phase >= np.pi or phase < -np.pi:
             phase -= TWO_PI * np.floor((phase + np.pi) / TWO_PI)
 
@@ -424,6 +533,16 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_REF_A] = ref_a
     state[S_SLIPS] = slips
     state[S_FAST_M2] = fast_m2
+    state[S_PH_RE] = ph_re
+    state[S_PH_IM] = ph_im
+    state[S_PM_RE] = pm_re
+    state[S_PM_IM] = pm_im
+    state[S_NCO_REF] = nco_ref
+    state[S_NCO_LEFT] = nco_left
+    state[S_NORM_LEFT] = norm_left
+    state[S_INV_RMS] = inv_rms
+    state[S_INV_NORM] = inv_norm
+    state[S_CAP] = cap
     state[S_WIN_STEPS] = win_steps
     state[S_PREV_STEP] = prev_step
     state[S_REF_AGE] = ref_age

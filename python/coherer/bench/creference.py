@@ -40,10 +40,16 @@ def find_compiler():
     raise CompilerMissing("no C compiler found (tried $CC, cc, gcc, clang)")
 
 
+def kernel_constants():
+    """``-D`` flags giving the C program the loop kernel's constants."""
+    names = ("LIMIT", "FAST_ALPHA", "LEVEL_STEP", "NORM_BLOCK", "MW_SETTLED")
+    return [f"-D{name}={float(getattr(K, name))!r}" for name in names if hasattr(K, name)]
+
+
 def compile_reference(workdir):
     """Compile ``reference_loop.c`` into ``workdir``; returns (executable path, compile command)."""
     exe = pathlib.Path(workdir) / "reference_loop"
-    cmd = [find_compiler(), *CFLAGS, "-o", str(exe), str(SOURCE), "-lm"]
+    cmd = [find_compiler(), *CFLAGS, *kernel_constants(), "-o", str(exe), str(SOURCE), "-lm"]
     subprocess.run(cmd, check=True, capture_output=True, text=True)
     return exe, " ".join([pathlib.Path(cmd[0]).name, *CFLAGS])
 

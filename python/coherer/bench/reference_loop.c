@@ -11,9 +11,13 @@
  *   acc2 += K3 e; acc1 += K2 e + acc2              PI filter + double integrator (clamped)
  *   theta += K1 e + acc1                           NCO (used from the next sample on)
  *
+ * The normalisation (1/sqrt(M2), (S/M2)^(M/2), limiter level) is recomputed from
+ * the moments every NORM_BLOCK samples once the moment weight reaches MW_SETTLED,
+ * every sample before, as in the kernel.
+ *
  * Gaps (non-finite or zero samples) coast the NCO and output 0; a sample whose
  * power exceeds LIMIT * M2 is limited to that power before the detector; a
- * lasting 20 dB level step (64-sample average) rescales the moments; the loop
+ * lasting level step (LEVEL_STEP in power, 64-sample average) rescales the moments; the loop
  * stays open until the moment weight reaches START_MW; e is clipped to +-E_MAX. The lock indicator and
  * slip tracker of the block are not part of this reference.
  *
@@ -31,9 +35,22 @@
 #include <stdlib.h>
 #include <time.h>
 
+/* The kernel's constants; creference.py passes the kernel's values with -D. */
+#ifndef LIMIT
 #define LIMIT 100.0
+#endif
+#ifndef FAST_ALPHA
 #define FAST_ALPHA (1.0 / 64.0)
-#define LEVEL_STEP 100.0
+#endif
+#ifndef LEVEL_STEP
+#define LEVEL_STEP 4.0
+#endif
+#ifndef NORM_BLOCK
+#define NORM_BLOCK 16
+#endif
+#ifndef MW_SETTLED
+#define MW_SETTLED 0.5
+#endif
 
 typedef struct { double re, im; } cplx;
 
@@ -68,17 +85,29 @@ typedef struct {
     cplx rot;
 } params_t;
 
-typedef struct { double phase, acc1, acc2, m2, m4, mw, fast_m2; } state_t;
+typedef struct { double phase, acc1, acc2, m2, m4, mw, fast_m2, norm_left, inv_rms, inv_norm, cap; } state_t;
+
+static double half_power(double u, int m)
+{
+    double result = 1.0, base = u;
+    for (int k = m >> 1; k > 0; k >>= 1) {
+        if (k & 1)
+            result *= base;
+        base *= base;
+    }
+    return (m & 1) ? result * sqrt(u) : result;
+}
 
 static void run_loop(const float *x, float *out, long n, const params_t *p, state_t *s)
 {
     double phase = s->phase, acc1 = s->acc1, acc2 = s->acc2;
     double m2 = s->m2, m4 = s->m4, mw = s->mw, fast_m2 = s->fast_m2;
-    const double quarter_power = 0.25 * p->power;
+    double norm_left = s->norm_left, inv_rms = s->inv_rms, inv_norm = s->inv_norm, cap = s->cap;
     for (long i = 0; i < n; i++) {
         double c = cos(phase), sn = sin(phase);
         double xr = x[2 * i], xi = x[2 * i + 1];
         double pw = xr * xr + xi * xi;
+        norm_left -= 1.0;
         if (!isfinite(pw) || pw == 0.0) {
             out[2 * i] = 0.0f;
             out[2 * i + 1] = 0.0f;
@@ -87,7 +116,6 @@ static void run_loop(const float *x, float *out, long n, const params_t *p, stat
             out[2 * i] = (float)y.re;
             out[2 * i + 1] = (float)y.im;
             if (mw > 0.0) {
-                double cap = LIMIT * m2 / mw;
                 if (pw > cap) {
                     double scale = sqrt(cap / pw);
                     y.re *= scale;
@@ -95,10 +123,12 @@ static void run_loop(const float *x, float *out, long n, const params_t *p, stat
                     pw = cap;
                 }
                 fast_m2 += FAST_ALPHA * (pw - fast_m2);
-                double level = fast_m2 * mw / m2;
-                if (level > LEVEL_STEP || level < 1.0 / LEVEL_STEP) {
+                double fw = fast_m2 * mw;
+                if (fw > LEVEL_STEP * m2 || fw * LEVEL_STEP < m2) {
+                    double level = fw / m2;
                     m2 *= level;
                     m4 *= level * level;
+                    norm_left = 0.0;
                 }
             } else {
                 fast_m2 = pw;
@@ -106,14 +136,19 @@ static void run_loop(const float *x, float *out, long n, const params_t *p, stat
             m2 += p->alpha * (pw - m2);
             m4 += p->alpha * (pw * pw - m4);
             mw += p->alpha * (1.0 - mw);
-            double mm2 = m2 / mw;
-            double sig2 = 2.0 - (m4 / mw) / (mm2 * mm2);
-            if (sig2 < p->sig2_floor)
-                sig2 = p->sig2_floor;
-            double g = 1.0 / sqrt(mm2);
-            cplx yn = { y.re * g, y.im * g };
+            if (norm_left <= 0.0 || mw < MW_SETTLED) {
+                double mm2 = m2 / mw;
+                double sig2 = 2.0 - (m4 / mw) / (mm2 * mm2);
+                if (sig2 < p->sig2_floor)
+                    sig2 = p->sig2_floor;
+                inv_rms = 1.0 / sqrt(mm2);
+                inv_norm = 1.0 / half_power(sqrt(sig2), p->power);
+                cap = LIMIT * mm2;
+                norm_left = NORM_BLOCK;
+            }
+            cplx yn = { y.re * inv_rms, y.im * inv_rms };
             cplx d = cmul(cpow_int(yn, p->power), p->rot);
-            double e = d.im / pow(sig2, quarter_power);
+            double e = d.im * inv_norm;
             if (mw < p->start_mw)
                 e = 0.0;
             else if (e > p->e_max)
@@ -139,6 +174,7 @@ static void run_loop(const float *x, float *out, long n, const params_t *p, stat
     }
     s->phase = phase; s->acc1 = acc1; s->acc2 = acc2;
     s->m2 = m2; s->m4 = m4; s->mw = mw; s->fast_m2 = fast_m2;
+    s->norm_left = norm_left; s->inv_rms = inv_rms; s->inv_norm = inv_norm; s->cap = cap;
 }
 
 int main(int argc, char **argv)
@@ -175,7 +211,7 @@ int main(int argc, char **argv)
 
     state_t s;
     for (int r = 0; r < reps; r++) {
-        state_t fresh = { 0.0, freq0, 0.0, 0.0, 0.0, 0.0, 0.0 };
+        state_t fresh = { 0.0, freq0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0 };
         s = fresh;
         double t0 = clock_s(CLOCK_MONOTONIC), c0 = clock_s(CLOCK_PROCESS_CPUTIME_ID);
         run_loop(x, out, n, &p, &s);

@@ -225,7 +225,8 @@ def _half_power(u, m):
 
 
 @njit(nogil=True, cache=True, fastmath={'contract'})
-def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count, state, params, power):
+def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count, lock_at, lock_to,
+                   stop_first, stop_every, state, params, power):
     """Run the loop over ``x`` (complex64), writing the corrected samples to ``out``.
 
     ``ref``, ``freq``, ``err`` are the diagnostic outputs (reference phasor,
@@ -234,7 +235,17 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     (relative to ``x``) at which the frequency is recorded into ``mark_freq``
     (rad/sample). Declared cycle slips are written to ``slip_at`` (sample index
     relative to ``x``) and ``slip_count`` (signed, units of 2*pi/M); both must
-    hold ``len(x)`` entries. Returns the number of slips declared. ``state`` is
+    hold ``len(x)`` entries. Changes of the lock indicator are written to
+    ``lock_at`` (index relative to ``x`` of the window end that decided, i.e. the
+    first sample after the window) and ``lock_to`` (1 locked, 0 not); both must
+    hold ``len(x) // lock_window + 1`` entries.
+
+    If ``stop_every > 0`` the kernel returns early at the first window end
+    ``b = stop_first + k * stop_every`` (``b`` >= 1, relative to ``x``) after
+    which the loop is not locked, so the caller can re-steer the NCO there
+    (acquisition); it then continues with ``x[b:]``.
+
+    Returns ``(samples processed, slips declared, lock changes)``. ``state`` is
     updated in place.
     """
     k1 = params[P_K1]
@@ -312,6 +323,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     next_mark = 0
     n_slips = 0
 
+    n_locks = 0
+    processed = x.shape[0]
+    next_stop = stop_first if stop_first >= 1 else stop_first + stop_every
     for n in range(x.shape[0]):
         while next_mark < n_marks and marks[next_mark] == n:
             mark_freq[next_mark] = acc1 + step_in_freq * last_step
@@ -488,6 +502,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
         # lock indicator: decide at the end of each window
         lock_pos += 1.0
         if lock_pos >= lock_window:
+            was_locked = locked
             ref_age += 1.0
             mean_step = win_steps / lock_window
             slope = (mean_step - prev_step) / lock_window
@@ -506,11 +521,20 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                     ref_f = mean_step + 0.5 * lock_window * slope
                     ref_a = acc2 if k3 > 0.0 else slope    # a 3rd-order loop knows the rate
                     ref_age = 0.0
+            if locked != was_locked:
+                lock_at[n_locks] = n + 1
+                lock_to[n_locks] = 1 if locked > 0.0 else 0
+                n_locks += 1
             lock_sum = 0.0
             lock_n = 0.0
             lock_pos = 0.0
             if mw > 0.0:
                 strong = loop_snr(m2 / mw, m4 / mw, power, bt) >= STRONG_LOOP_SNR
+        if stop_every > 0 and n + 1 == next_stop:
+            next_stop += stop_every
+            if locked <= 0.0:
+                processed = n + 1
+                break
     while next_mark < n_marks:
         mark_freq[next_mark] = acc1 + step_in_freq * last_step
         next_mark += 1
@@ -553,4 +577,4 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_PSI_REF] = psi_ref
     state[S_SLIP_POS] = slip_pos
     state[S_STRONG] = 1.0 if strong else 0.0
-    return n_slips
+    return processed, n_slips, n_locks

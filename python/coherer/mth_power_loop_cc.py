@@ -34,6 +34,9 @@ SLIP_REFERENCE_STAGES_BW = (1.0, 0.4, 0.15)
 SLIP_ANGLE_BETA_PER_BT = 2.0
 #: Most events remembered by acquisition_log() and lock_log().
 EVENT_LOG = 1000
+#: Samples per work() call the block arranges for (history and output buffer): long
+#: calls amortise the fixed cost of a Python work() call, about 90 us.
+CALL_ITEMS = 32768
 
 
 def default_point_angle(power):
@@ -118,6 +121,13 @@ class mth_power_loop_cc(gr.sync_block):
         if self._diagnostics:
             out_sig = [np.complex64, np.complex64, np.float32, np.float32]
         gr.sync_block.__init__(self, name=name, in_sig=[np.complex64], out_sig=out_sig)
+        # the history makes the upstream buffer hold CALL_ITEMS samples whatever the
+        # source; the output buffer lets this block write as many per call
+        self.set_history(CALL_ITEMS)
+        level = self.logger.get_string_level()
+        self.logger.set_level("warn")          # set_min_output_buffer logs on stdout at info
+        self.set_min_output_buffer(2 * CALL_ITEMS)
+        self.logger.set_level(level)
 
         self._lock = threading.Lock()          # serialises setters / message handler
         self._spec = (float(noise_bw_hz), float(damping), int(loop_order))
@@ -139,6 +149,8 @@ class mth_power_loop_cc(gr.sync_block):
         self._empty_d = np.zeros(0, np.float64)
         self._slip_at = np.zeros(8192, np.int64)
         self._slip_count = np.zeros(8192, np.int64)
+        self._lock_at = np.zeros(64, np.int64)
+        self._lock_to = np.zeros(64, np.int64)
 
         self.message_port_register_in(metadata.COMMAND_PORT_PMT)
         self.set_msg_handler(metadata.COMMAND_PORT_PMT, self._handle_command)
@@ -188,8 +200,10 @@ class mth_power_loop_cc(gr.sync_block):
         st = K.new_state()
         self._run_kernel(x, np.empty(4, np.complex64), st, self._params, diag=None)
 
-    def _run_kernel(self, x, out, state, params, diag, marks=None, mark_freq=None):
-        """Run the kernel on one segment; returns the number of slips declared."""
+    def _run_kernel(self, x, out, state, params, diag, marks=None, mark_freq=None,
+                    stop_first=0, stop_every=0):
+        """Run the kernel on ``x`` (stopping early at an unlocked FFT-block end when
+        ``stop_every > 0``); returns (samples processed, slips declared, lock changes)."""
         if diag is None:
             ref, freq, err = self._empty_c, self._empty_f, self._empty_f
         else:
@@ -199,8 +213,12 @@ class mth_power_loop_cc(gr.sync_block):
         if len(self._slip_at) < len(x):
             self._slip_at = np.zeros(len(x), np.int64)
             self._slip_count = np.zeros(len(x), np.int64)
+        if len(self._lock_at) < len(x) // self._lock_window + 2:
+            self._lock_at = np.zeros(len(x) // self._lock_window + 2, np.int64)
+            self._lock_to = np.zeros(len(self._lock_at), np.int64)
         return K.mth_power_loop(x, out, ref, freq, err, marks, mark_freq,
-                                self._slip_at, self._slip_count, state, params, self._power)
+                                self._slip_at, self._slip_count, self._lock_at, self._lock_to,
+                                stop_first, stop_every, state, params, self._power)
 
     def _set_nco_frequency(self, rad_per_sample):
         """Re-steer the NCO (work() thread only); the slip tracker follows, so it is not a slip."""
@@ -312,7 +330,7 @@ class mth_power_loop_cc(gr.sync_block):
 
     # --- streaming -------------------------------------------------------------------
     def work(self, input_items, output_items):
-        x = input_items[0]
+        x = input_items[0][CALL_ITEMS - 1:]     # the history is there only for the buffer size
         n = len(x)
         start = self.nitems_read(0)
         params = self._params
@@ -321,46 +339,65 @@ class mth_power_loop_cc(gr.sync_block):
             self._pending_freq = None
             self._set_nco_frequency(pending)
         with_diag = self._diagnostics and len(output_items) == 4
-        window = self._lock_window
+        nfft = self._nfft
         pos = 0
         while pos < n:
-            # segments end on absolute lock-window boundaries (FFT blocks are 4 windows)
-            end = min(n, pos + window - (start + pos) % window)
+            # one kernel call for the whole buffer; while acquiring it returns at each
+            # unlocked FFT-block end so that the NCO can be re-steered there
+            end, n_slips, n_locks = self._process(x, output_items, pos, start, params, with_diag)
+            for i in range(n_locks):
+                self._lock_log.append((start + pos + int(self._lock_at[i]), bool(self._lock_to[i])))
+            if n_locks:
+                del self._lock_log[:-EVENT_LOG]
             if self._acquire:
-                first = (start + pos) % self._nfft
-                self._acq_buf[first:first + end - pos] = x[pos:end]
-            was_locked = self._state[K.S_LOCKED] > 0.0
-            self._process(x, output_items, pos, end, start, params, with_diag)
-            if (start + end) % window == 0:
-                locked = self._state[K.S_LOCKED] > 0.0
-                if locked != was_locked:
-                    self._lock_log.append((start + end, locked))
-                    del self._lock_log[:-EVENT_LOG]
-                if self._acquire and (start + end) % self._nfft == 0:
+                self._keep_for_acquisition(x[pos:end], start + pos)
+                if (start + end) % nfft == 0:
                     self._steer(start + end)
             pos = end
         return n
 
-    def _process(self, x, output_items, pos, end, start, params, with_diag):
-        """Run the kernel on x[pos:end] and place this segment's tags."""
+    def _keep_for_acquisition(self, seg, offset):
+        """Copy ``seg`` (starting at absolute ``offset``) into the ring of the last FFT block:
+        at a block end the ring holds that block in order."""
+        nfft = self._nfft
+        if len(seg) > nfft:
+            offset += len(seg) - nfft
+            seg = seg[-nfft:]
+        first = offset % nfft
+        k = min(len(seg), nfft - first)
+        self._acq_buf[first:first + k] = seg[:k]
+        self._acq_buf[:len(seg) - k] = seg[k:]
+
+    def _process(self, x, output_items, pos, start, params, with_diag):
+        """Run the kernel on x[pos:] and place the tags of what it processed; returns
+        (end, slips declared, lock changes)."""
         diag = None
         if with_diag:
-            diag = (output_items[1][pos:end], output_items[2][pos:end], output_items[3][pos:end])
+            diag = (output_items[1][pos:], output_items[2][pos:], output_items[3][pos:])
         marks = mark_freq = None
+        n = len(x) - pos
         if self._tag_interval:
             first = (-(start + pos)) % self._tag_interval
-            marks = np.arange(first, end - pos, self._tag_interval, dtype=np.int64)
+            marks = np.arange(first, n, self._tag_interval, dtype=np.int64)
             mark_freq = np.empty(len(marks))
-        n_slips = self._run_kernel(x[pos:end], output_items[0][pos:end], self._state, params,
-                                   diag, marks, mark_freq)
+        stop_first = stop_every = 0
+        if self._acquire:
+            stop_every = self._nfft
+            stop_first = (-(start + pos)) % self._nfft
+        done, n_slips, n_locks = self._run_kernel(x[pos:], output_items[0][pos:], self._state,
+                                                  params, diag, marks, mark_freq,
+                                                  stop_first, stop_every)
         if diag is not None:
-            np.multiply(diag[1], self._fs / (2.0 * pi), out=diag[1])   # rad/sample -> Hz
+            np.multiply(diag[1][:done], self._fs / (2.0 * pi), out=diag[1][:done])   # -> Hz
         base = start + pos
         if marks is not None:
             scale = self._fs / (2.0 * pi)
             for i, f in zip(marks, mark_freq):
+                if i >= done:
+                    break
                 self.add_item_tag(0, base + int(i), metadata.CARRIER_FREQ_PMT,
                                   pmt.from_double(float(f) * scale))
         for i in range(n_slips):
             self.add_item_tag(0, base + int(self._slip_at[i]), metadata.CYCLE_SLIP_PMT,
                               pmt.from_long(int(self._slip_count[i])))
+        return pos + done, n_slips, n_locks

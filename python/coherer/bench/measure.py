@@ -28,14 +28,24 @@ def summarise(rates):
 
 
 class copy_cc(gr.sync_block):
-    """Trivial Python pass-through (numpy copy): the cost of a Python block with no DSP."""
+    """Trivial Python pass-through (numpy copy): the cost of a Python block with no DSP.
 
-    def __init__(self):
+    ``call_items > 1`` arranges for calls of up to that many samples the way the
+    loop block does (history and minimum output buffer)."""
+
+    def __init__(self, call_items=1):
         gr.sync_block.__init__(self, name="bench_copy_cc", in_sig=[np.complex64],
                                out_sig=[np.complex64])
+        self._skip = max(1, int(call_items)) - 1
+        if self._skip:
+            self.set_history(self._skip + 1)
+            level = self.logger.get_string_level()
+            self.logger.set_level("warn")
+            self.set_min_output_buffer(2 * (self._skip + 1))
+            self.logger.set_level(level)
 
     def work(self, input_items, output_items):
-        output_items[0][:] = input_items[0]
+        output_items[0][:] = input_items[0][self._skip:]
         return len(output_items[0])
 
 

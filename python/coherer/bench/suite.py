@@ -20,6 +20,7 @@ from gnuradio import gr
 
 from .. import _loop_kernel as K
 from ..mth_power_loop_cc import mth_power_loop_cc
+from ..mth_power_loop_cc import CALL_ITEMS
 from ..squaring_loop_cc import squaring_loop_cc
 from . import creference, measure, soak as soak_mod, stream
 
@@ -28,7 +29,7 @@ SAMPLE_RATE = 1e6
 #: Loop noise bandwidth of every benchmarked loop, Hz (B_L T = 1e-3).
 NOISE_BW_HZ = 1000.0
 #: Samples per run and repetitions: full bench and ``--quick``.
-FULL = {"samples": 1 << 20, "reps": 5}
+FULL = {"samples": 1 << 22, "reps": 5}
 QUICK = {"samples": 1 << 15, "reps": 2}
 #: Samples of the ``--soak`` run (issue 7: 2e8).
 SOAK_SAMPLES = 200_000_000
@@ -185,6 +186,9 @@ def run(quick=False, soak=False, soak_samples=SOAK_SAMPLES, progress=None):
         say("framework floor (Python copy block)")
         result["framework_floor"] = measure.summarise_both(
             measure.flowgraph_rates(measure.copy_cc, tmp / "psk2.cf32", n, reps))
+        result["framework_floor_long_calls"] = measure.summarise_both(measure.flowgraph_rates(
+            lambda: measure.copy_cc(CALL_ITEMS), tmp / "psk2.cf32", n, reps))
+        result["call_items"] = CALL_ITEMS
 
         say("two chains vs one")
         one = measure.summarise_both(measure.flowgraph_rates(_squaring, tmp / "psk2.cf32", n, reps, 1))
@@ -263,6 +267,9 @@ def _table(result, clock):
                      f"{c_text:>8s} {fg_c:>7s} {k_c:>10s}")
     floor = _fig(result["framework_floor"][clock])
     lines.append(f"{'framework floor (Python copy block)':36s} {'-':>8s} {floor:>10s}")
+    floor = _fig(result["framework_floor_long_calls"][clock])
+    label = f"  same, {result['call_items']}-sample calls"
+    lines.append(f"{label:36s} {'-':>8s} {floor:>10s}")
     return lines
 
 

@@ -224,7 +224,7 @@ def _half_power(u, m):
     return result
 
 
-@njit(nogil=True, cache=True, fastmath={'contract'})
+@njit(nogil=True, cache=True, fastmath={'contract'}, error_model='numpy')
 def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count, lock_at, lock_to,
                    stop_first, stop_every, state, params, power):
     """Run the loop over ``x`` (complex64), writing the corrected samples to ``out``.

@@ -32,8 +32,9 @@ Robustness: a non-finite or exactly zero sample is a gap; the NCO coasts
 power exceeds ``LIMIT * M2`` is limited to that power (phase kept) before it
 reaches the moments and the detector, so one huge spike cannot upset the
 loop gain; a lasting level step of 6 dB or more (seen by a fast average over
-64 samples) rescales the moments at once, so the gain recovers quickly after a
-fade or a gain change.
+64 samples: a signal appearing out of noise or fading into it, a gain change)
+restarts the moment estimate, so the detector gain is right again a few
+hundred samples later instead of after the whole averaging length.
 
 Lock indicator (internal, drives acquisition): the phase-only statistic
 ``mean cos(M arg y - M point_angle)`` over windows of ``lock_window`` samples
@@ -43,7 +44,8 @@ counted from the start of the stream; on noise it has mean 0 and variance
 
 Cycle slips: a slip is a step of 2*pi/M in the NCO phase relative to the
 carrier. Two trackers watch for it, and the loop SNR 1/(B_L T V_M) estimated from
-the moments over the last lock window chooses which one decides:
+the moments at the last lock-window end (kept while the moments restart after
+a level step) chooses which one decides:
 
 - weak signal (loop SNR < STRONG_LOOP_SNR): a slow third-order reference
   (noise bandwidth a fraction of B_L, no steady error to a frequency ramp)
@@ -157,7 +159,7 @@ PARAMS_SIZE = P_BT + 1
 
 LIMIT = 100.0                      # sample power limit relative to M2 (+20 dB)
 FAST_ALPHA = 1.0 / 64.0            # averaging coefficient of the level-step detector
-LEVEL_STEP = 4.0                   # a level change of 6 dB rescales the moments
+LEVEL_STEP = 4.0                   # a level change of 6 dB restarts the moment estimate
 TWO_PI = 2.0 * np.pi
 NCO_RESYNC = 256                   # phasors recomputed exactly from the phase every this many samples
 SMALL_ANGLE = 2.0 ** -5            # series rotation for |angle| <= this (error < 6e-15 per step)
@@ -369,14 +371,15 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                 if p > cap:
                     scale = np.sqrt(cap / p)
                     p = cap
-                # a lasting level step of 20 dB or more (fade, gain change): rescale
-                # the moments at once, keeping the SNR they estimate
+                # a lasting level step of 6 dB or more (a signal appearing or fading,
+                # a gain change): the old moments describe another signal, so the
+                # amplitude estimate starts again (the loop coasts until it settles)
                 fast_m2 += FAST_ALPHA * (p - fast_m2)
                 fw = fast_m2 * mw
                 if fw > LEVEL_STEP * m2 or fw * LEVEL_STEP < m2:
-                    level = fw / m2
-                    m2 *= level
-                    m4 *= level * level
+                    m2 = 0.0
+                    m4 = 0.0
+                    mw = 0.0
                     norm_left = 0.0
             else:
                 fast_m2 = p
@@ -528,7 +531,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             lock_sum = 0.0
             lock_n = 0.0
             lock_pos = 0.0
-            if mw > 0.0:
+            if mw >= MW_SETTLED:      # keep the last verdict while the moments restart
                 strong = loop_snr(m2 / mw, m4 / mw, power, bt) >= STRONG_LOOP_SNR
         if stop_every > 0 and n + 1 == next_stop:
             next_stop += stop_every

@@ -49,6 +49,11 @@ class ReceiverSettings:
     unlock_threshold: float = None
 
 
+#: Windows before an unlock left out of an interval's mean frequency: the window in
+#: which the carrier faded and the one that decided the unlock.
+TRAILING_WINDOWS = 2
+
+
 @dataclass
 class Interval:
     """One locked interval ``[start, end)`` in samples, with its statistics."""
@@ -56,6 +61,31 @@ class Interval:
     end: int
     freq_sum: float = 0.0          #: sum of NCO frequency (Hz) over the interval
     freq_count: int = 0
+    #: [window index, sum, count] of the latest windows, folded into freq_sum once older than
+    #: TRAILING_WINDOWS; at an unlock they are dropped (the carrier was already fading there)
+    recent: list = field(default_factory=list)
+
+    def add_frequency(self, window_index, total, count):
+        """Add ``count`` NCO-frequency samples (sum ``total``, Hz) of detector window ``window_index``."""
+        if self.recent and self.recent[-1][0] == window_index:
+            self.recent[-1][1] += total
+            self.recent[-1][2] += count
+        else:
+            self.recent.append([window_index, total, count])
+        while len(self.recent) > TRAILING_WINDOWS:
+            _, old_sum, old_count = self.recent.pop(0)
+            self.freq_sum += old_sum
+            self.freq_count += old_count
+
+    def close(self, end, lost):
+        """End the interval at ``end``; ``lost``: the carrier went away (unlock), so the
+        trailing windows, where the detector was still deciding, are left out if possible."""
+        self.end = int(end)
+        if not (lost and self.freq_count):
+            for _, total, count in self.recent:
+                self.freq_sum += total
+                self.freq_count += count
+        self.recent = []
     esn0_lin: list = field(default_factory=list)    #: status Es/N0 (linear) inside
     metric: list = field(default_factory=list)
 
@@ -86,12 +116,13 @@ class _collector(gr.sync_block):
     2 NCO frequency (Hz), 3 the loop's reference e^{j theta^}.
     """
 
-    def __init__(self, sample_rate, decimation):
+    def __init__(self, sample_rate, decimation, window):
         gr.sync_block.__init__(self, name="coherer_collector",
                                in_sig=[np.complex64, np.complex64, np.float32, np.complex64],
                                out_sig=None)
         self._fs = float(sample_rate)
         self._trace_step = int(decimation)
+        self._window = int(window)
         self.events = []
         self.status = []              # (sample, metric, esn0_db, locked)
         self.intervals = []
@@ -127,7 +158,7 @@ class _collector(gr.sync_block):
         for offset, _, key, value in tags:
             rel = offset - start
             if key == metadata.CARRIER_LOCK:
-                self._accumulate(freq, pos, rel)
+                self._accumulate(freq, pos, rel, start)
                 pos = rel
                 self._on_lock_change(offset, bool(pmt.to_bool(value)), float(freq[rel]))
             elif key == metadata.CYCLE_SLIP:
@@ -138,7 +169,7 @@ class _collector(gr.sync_block):
                                     "slips": int(pmt.to_long(value))})
             else:
                 self._on_status(value)
-        self._accumulate(freq, pos, n)
+        self._accumulate(freq, pos, n, start)
         # decimated traces
         first = (-start) % self._trace_step
         idx = np.arange(first, n, self._trace_step)
@@ -150,10 +181,16 @@ class _collector(gr.sync_block):
             t["freq"].append(freq[idx].copy())
             t["phase"].append(np.angle(ins[3][idx]).astype(np.float32))
 
-    def _accumulate(self, freq, lo, hi):
-        if self._open is not None and hi > lo:
-            self._open.freq_sum += float(np.sum(freq[lo:hi], dtype=np.float64))
-            self._open.freq_count += hi - lo
+    def _accumulate(self, freq, lo, hi, start):
+        """Add freq[lo:hi] (absolute offset of freq[0]: ``start``) to the open interval,
+        window by window."""
+        if self._open is None:
+            return
+        while hi > lo:
+            w = (start + lo) // self._window
+            cut = min(hi, (w + 1) * self._window - start)
+            self._open.add_frequency(w, float(np.sum(freq[lo:cut], dtype=np.float64)), cut - lo)
+            lo = cut
 
     def _on_lock_change(self, sample, locked, freq_hz):
         event = {"event": "lock" if locked else "unlock", "sample": int(sample),
@@ -162,7 +199,7 @@ class _collector(gr.sync_block):
         if locked and self._open is None:
             self._open = Interval(int(sample), int(sample))
         elif not locked and self._open is not None:
-            self._open.end = int(sample)
+            self._open.close(sample, lost=True)
             self.intervals.append(self._open)
             self._open = None
 
@@ -185,7 +222,7 @@ class _collector(gr.sync_block):
     def finish(self, total):
         """Close an interval still open at the end of the stream (``total`` samples)."""
         if self._open is not None:
-            self._open.end = int(total)
+            self._open.close(total, lost=False)
             self.intervals.append(self._open)
             self._open = None
 
@@ -279,7 +316,7 @@ def run_receiver(rec, settings, progress=None):
                            lock_threshold=settings.lock_threshold,
                            unlock_threshold=settings.unlock_threshold,
                            status_interval=status_interval)
-    sink = _collector(fs, decimation)
+    sink = _collector(fs, decimation, settings.window)
     err_sink = blocks.null_sink(gr.sizeof_float)
 
     tb = gr.top_block("coherer_run")

@@ -17,7 +17,7 @@
  *
  * Gaps (non-finite or zero samples) coast the NCO and output 0; a sample whose
  * power exceeds LIMIT * M2 is limited to that power before the detector; a
- * lasting level step (LEVEL_STEP in power, 64-sample average) rescales the moments; the loop
+ * lasting level step (LEVEL_STEP in power, 64-sample average) restarts the moments; the loop
  * stays open until the moment weight reaches START_MW; e is clipped to +-E_MAX. The lock indicator and
  * slip tracker of the block are not part of this reference.
  *
@@ -125,9 +125,9 @@ static void run_loop(const float *x, float *out, long n, const params_t *p, stat
                 fast_m2 += FAST_ALPHA * (pw - fast_m2);
                 double fw = fast_m2 * mw;
                 if (fw > LEVEL_STEP * m2 || fw * LEVEL_STEP < m2) {
-                    double level = fw / m2;
-                    m2 *= level;
-                    m4 *= level * level;
+                    m2 = 0.0;
+                    m4 = 0.0;
+                    mw = 0.0;
                     norm_left = 0.0;
                 }
             } else {

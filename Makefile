@@ -13,5 +13,8 @@ demo: setup
 test: setup
 	$(PY) -m pytest
 
+bench: setup
+	$(VENV)/bin/coherer bench
+
 clean:
 	rm -rf build $(VENV)

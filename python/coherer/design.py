@@ -32,7 +32,6 @@ use) the design bandwidth is refined numerically so that the actual noise
 bandwidth of the discrete loop equals the requested one to 1e-9.
 """
 
-import warnings
 from dataclasses import dataclass
 from math import comb, factorial, fsum, inf, pi, sqrt
 

@@ -17,7 +17,7 @@ separately in the summary.
 import threading
 import time
 from dataclasses import dataclass, field
-from math import ceil, pi
+from math import ceil
 
 import numpy as np
 import pmt

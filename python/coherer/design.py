@@ -241,10 +241,14 @@ class LoopDesign:
 
 
 def validate_spec(sample_rate, power, noise_bw_hz, damping, loop_order):
-    """Raise ``ValueError`` naming the first out-of-range argument."""
+    """Raise ``ValueError`` naming the first out-of-range (or non-numeric) argument."""
+    for name, value in (("sample_rate", sample_rate), ("power", power), ("noise_bw_hz", noise_bw_hz),
+                        ("damping", damping), ("loop_order", loop_order)):
+        if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
+            raise ValueError(f"{name} must be a number, got {value!r}")
     if not np.isfinite(sample_rate) or sample_rate <= 0:
         raise ValueError(f"sample_rate must be a positive number of samples/s, got {sample_rate!r}")
-    if int(power) != power or not 1 <= power <= MAX_POWER:
+    if not np.isfinite(power) or int(power) != power or not 1 <= power <= MAX_POWER:
         raise ValueError(f"power must be an integer in 1..{MAX_POWER}, got {power!r}")
     if not np.isfinite(noise_bw_hz) or noise_bw_hz <= 0:
         raise ValueError(f"noise_bw_hz must be > 0 Hz, got {noise_bw_hz!r}")

@@ -88,7 +88,7 @@ the stream is chunked.
 import numpy as np
 from numba import njit
 
-from ._numeric import int_power
+from ._numeric import half_power, int_power
 
 # state[] layout -------------------------------------------------------------------
 S_PHASE = 0      # theta^, rad, wrapped to [-pi, pi)
@@ -208,22 +208,6 @@ def _rotate(q_re, q_im, v):
         c = np.cos(v)
         s = np.sin(v)
     return q_re * c - q_im * s, q_re * s + q_im * c
-
-
-@njit(cache=True, inline="always")
-def _half_power(u, m):
-    """u^(m/2) for u >= 0 and a positive integer m: repeated squaring, one sqrt if m is odd."""
-    result = 1.0
-    base = u
-    k = m >> 1
-    while k > 0:
-        if k & 1:
-            result *= base
-        base *= base
-        k >>= 1
-    if m & 1:
-        result *= np.sqrt(u)
-    return result
 
 
 @njit(nogil=True, cache=True, fastmath={'contract'}, error_model='numpy')
@@ -393,7 +377,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                 if sig2 < sig2_floor:
                     sig2 = sig2_floor
                 inv_rms = 1.0 / np.sqrt(mm2)
-                inv_norm = 1.0 / _half_power(np.sqrt(sig2), power)   # 1 / (S/M2)^(M/2)
+                inv_norm = 1.0 / half_power(np.sqrt(sig2), power)   # 1 / (S/M2)^(M/2)
                 cap = LIMIT * mm2
                 norm_left = NORM_BLOCK
             # detector d = (y_lim/sqrt(M2))^M e^{-j M point_angle} = z conj(P^M)
@@ -423,7 +407,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             last_step = k1 * e
             phase += last_step
             # lock statistic: cos(M arg y) = Re(d)/|d|
-            mag = _half_power(p * inv_rms * inv_rms, power)   # |d| = (p/M2)^(M/2)
+            mag = half_power(p * inv_rms * inv_rms, power)   # |d| = (p/M2)^(M/2)
             if mag > 0.0:
                 inv_mag = 1.0 / mag
                 ur = d.real * inv_mag

@@ -1,6 +1,7 @@
 # SPDX-License-Identifier: GPL-3.0-or-later
 """Small numba helpers shared by the kernels."""
 
+import numpy as np
 from numba import njit
 
 
@@ -14,4 +15,20 @@ def int_power(z, m):
             result *= base
         base *= base
         m >>= 1
+    return result
+
+
+@njit(cache=True, inline="always")
+def half_power(u, m):
+    """u**(m/2) for a real u >= 0 and a positive integer m: repeated squaring, one sqrt if m is odd."""
+    result = 1.0
+    base = u
+    k = m >> 1
+    while k > 0:
+        if k & 1:
+            result *= base
+        base *= base
+        k >>= 1
+    if m & 1:
+        result *= np.sqrt(u)
     return result

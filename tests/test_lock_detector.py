@@ -78,6 +78,18 @@ def messages(dbg):
     return [metadata.status_from_pmt(dbg.get_message(i)) for i in range(dbg.num_messages())]
 
 
+def run_detector(tb, x, det, sink=None, tags=(), upstream=()):
+    """vector source (with ``tags``) -> ``upstream`` blocks -> ``det`` -> ``sink`` (default: a
+    null sink), status messages stored; runs the flowgraph. Returns (sink, status dicts)."""
+    src = blocks.vector_source_c(x, False, 1, list(tags))
+    sink = blocks.null_sink(gr.sizeof_gr_complex) if sink is None else sink
+    dbg = blocks.message_debug()
+    tb.connect(src, *upstream, det, sink)
+    tb.msg_connect((det, metadata.STATUS_PORT), (dbg, "store"))
+    tb.run()
+    return sink, messages(dbg)
+
+
 def tags_as_python(tags):
     return [(t.offset, pmt.symbol_to_string(t.key), pmt.to_python(t.value)) for t in tags]
 
@@ -188,13 +200,8 @@ def test_fade_lock_unlock_lock(tb, power):
     rng = np.random.default_rng(3000 + power)
     x = psk(rng, 3 * second, power, 15.0)
     x[second:2 * second] = noise(rng, second, 1.0 / db(15.0))
-    src = blocks.vector_source_c(x)
     det = lock_detector_cc(FS, power, window)
-    sink = lock_sink()
-    dbg = blocks.message_debug()
-    tb.connect(src, det, sink)
-    tb.msg_connect((det, metadata.STATUS_PORT), (dbg, "store"))
-    tb.run()
+    sink, msgs = run_detector(tb, x, det, lock_sink())
 
     changes = lock_tags(sink)
     assert [s for _, s in changes] == [True, False, True]
@@ -204,7 +211,6 @@ def test_fade_lock_unlock_lock(tb, power):
     assert 2 * second - window < t_relock <= 2 * second + window
     for o in (t_unlock, t_relock):
         assert o % window == 0                      # first sample of the deciding window
-    msgs = messages(dbg)
     assert [(m["sample"], m["locked"]) for m in msgs] == [(o, s) for o, s in changes]
     assert all(m["time_s"] == pytest.approx(m["sample"] / FS, abs=1e-9) for m in msgs)
     assert all(metadata.ST_FREQ_HZ not in m for m in msgs)   # no carrier_freq upstream
@@ -250,14 +256,8 @@ def test_esn0_estimate(tb):
     snrs = (3.0, 6.0, 10.0, 15.0, 20.0)
     rng = np.random.default_rng(4000)
     x = np.concatenate([psk(rng, window * k, 4, s) for s in snrs])
-    src = blocks.vector_source_c(x)
     det = lock_detector_cc(FS, 4, window, status_interval=window)
-    sink = blocks.null_sink(gr.sizeof_gr_complex)
-    dbg = blocks.message_debug()
-    tb.connect(src, det, sink)
-    tb.msg_connect((det, metadata.STATUS_PORT), (dbg, "store"))
-    tb.run()
-    msgs = messages(dbg)
+    _, msgs = run_detector(tb, x, det)
     assert [m["sample"] for m in msgs] == list(range(0, len(x), window))
     est = db(np.array([m["esn0_db"] for m in msgs])).reshape(len(snrs), k)
     for snr, row in zip(snrs, est):
@@ -356,14 +356,8 @@ def test_rx_time_and_carrier_freq():
 def test_time_without_rx_time(tb):
     rng = np.random.default_rng(6100)
     x = psk(rng, 20_480, 4, 10.0)
-    src = blocks.vector_source_c(x)
     det = lock_detector_cc(FS, 4, 1024, status_interval=4096)
-    sink = blocks.null_sink(gr.sizeof_gr_complex)
-    dbg = blocks.message_debug()
-    tb.connect(src, det, sink)
-    tb.msg_connect((det, metadata.STATUS_PORT), (dbg, "store"))
-    tb.run()
-    msgs = messages(dbg)
+    _, msgs = run_detector(tb, x, det)
     assert [m["sample"] for m in msgs] == [0, 4096, 8192, 12288, 16384]
     assert all(m["time_s"] == m["sample"] / FS for m in msgs)
     assert all(m["locked"] for m in msgs)
@@ -394,14 +388,8 @@ def test_gaps_and_spikes_do_not_poison(tb):
     x[5 * window:6 * window] = 0
     x[8 * window + 3] = np.inf
     x[9 * window + 5] = 1e30
-    src = blocks.vector_source_c(x)
     det = lock_detector_cc(FS, 2, window, status_interval=window)
-    sink = blocks.vector_sink_c()
-    dbg = blocks.message_debug()
-    tb.connect(src, det, sink)
-    tb.msg_connect((det, metadata.STATUS_PORT), (dbg, "store"))
-    tb.run()
-    msgs = messages(dbg)
+    sink, msgs = run_detector(tb, x, det, blocks.vector_sink_c())
     by_sample = {m["sample"]: m for m in msgs}
     assert by_sample[4 * window]["metric"] == 0.0 and not by_sample[4 * window]["locked"]
     assert np.isnan(by_sample[4 * window]["esn0_db"])
@@ -472,17 +460,12 @@ def test_after_mth_power_loop(tb):
     from gnuradio.coherer import mth_power_loop_cc
     rng = np.random.default_rng(9000)
     x = _offset_psk(rng, 200_000, 4, 12.0, 20.0)
-    src = blocks.vector_source_c(x)
     loop = mth_power_loop_cc(FS, 4, 100.0, tag_interval=4096)
     det = lock_detector_cc(FS, 4, 1024, status_interval=16384)
-    sink = lock_sink()
-    dbg = blocks.message_debug()
-    tb.connect(src, loop, det, sink)
-    tb.msg_connect((det, metadata.STATUS_PORT), (dbg, "store"))
-    tb.run()
+    sink, msgs = run_detector(tb, x, det, lock_sink(), upstream=(loop,))
     changes = lock_tags(sink)
     assert len(changes) in (1, 3) and changes[-1][1] and changes[-1][0] < 0.1 * FS
-    late = [m for m in messages(dbg) if m["sample"] > 0.2 * FS]
+    late = [m for m in msgs if m["sample"] > 0.2 * FS]
     assert late and all(m["locked"] for m in late)
     assert all(m["freq_hz"] == pytest.approx(20.0, abs=2.0) for m in late)
 
@@ -537,13 +520,7 @@ def test_malformed_upstream_tags_are_ignored(tb):
     x = psk(rng, 8192, 2, 15.0)
     tags = [tag(0, metadata.RX_TIME, pmt.intern("garbage")), tag(10, metadata.CARRIER_FREQ, pmt.intern("x")),
             tag(2000, metadata.CARRIER_FREQ, pmt.from_long(50))]
-    src = blocks.vector_source_c(x, False, 1, tags)
     det = lock_detector_cc(FS, 2, 1024, status_interval=1024)
-    sink = blocks.null_sink(gr.sizeof_gr_complex)
-    dbg = blocks.message_debug()
-    tb.connect(src, det, sink)
-    tb.msg_connect((det, metadata.STATUS_PORT), (dbg, "store"))
-    tb.run()
-    msgs = messages(dbg)
+    _, msgs = run_detector(tb, x, det, tags=tags)
     assert len(msgs) == 8 and all(m["time_s"] == m["sample"] / FS for m in msgs)
     assert [m.get("freq_hz") for m in msgs] == [None, None] + [50.0] * 6

@@ -7,16 +7,13 @@ import pmt
 from gnuradio import gr
 
 from . import lockstat, metadata
+from ._long_calls import request_long_calls
 from .design import MAX_POWER
 from .mth_power_loop_cc import default_point_angle
 
 #: Accepted window lengths, samples.
 MIN_WINDOW = 32
 MAX_WINDOW = 1 << 20
-#: Items per work() call the block arranges buffers for (amortises the per-call cost of a
-#: Python block): the upstream buffer is enlarged through an unused history of this many
-#: items, and the block's own output buffer holds two such calls.
-CALL_ITEMS = 1 << 15
 
 
 def _real(name, value):
@@ -91,7 +88,7 @@ class lock_detector_cc(gr.sync_block):
     before its first sample leaves the block), so a finite stream's last
     incomplete window, fewer than ``window`` samples, is not passed on.
     To keep the per-call cost of a Python block low the block asks GNU Radio for
-    calls of up to 32768 samples (an unused input history enlarges the upstream
+    calls of up to 131072 samples (an unused input history enlarges the upstream
     buffer); decisions never depend on how the stream is split into calls.
     The lock indicator is a statistical decision, not a safety-of-life signal.
     """
@@ -146,17 +143,9 @@ class lock_detector_cc(gr.sync_block):
 
         # Whole windows per call, so a window's decision exists before its first sample leaves.
         self.set_output_multiple(window)
-        # Large calls: GNU Radio sizes the upstream buffer for our history, so an unused history
-        # of CALL_ITEMS items gives calls of up to CALL_ITEMS new items (work() skips it).
-        self._history = CALL_ITEMS + 1
-        self.set_history(self._history)
-        level = self.log_level()
-        self.set_log_level("warning")          # GNU Radio logs this call at info level
-        self.set_min_output_buffer(2 * max(CALL_ITEMS, window))
-        self.set_log_level(level)
+        self._skip = request_long_calls(self, multiple=window)  # leading history samples work() skips
         self.message_port_register_out(metadata.STATUS_PORT_PMT)
 
-        self._acc = lockstat.new_accumulator()
         self._windows_done = 0                 # absolute index of the next window to complete
         self._locked_state = False
         self._metric = float("nan")
@@ -174,7 +163,7 @@ class lock_detector_cc(gr.sync_block):
         """Compile the kernels now rather than in the first work() call."""
         x = np.ones(2 * MIN_WINDOW, np.complex64)
         bufs = [np.zeros(3) for _ in range(6)]
-        k = lockstat.window_sums(x, self._power, *self._rot, MIN_WINDOW, lockstat.new_accumulator(), *bufs[:4])
+        k = lockstat.window_sums(x, self._power, *self._rot, MIN_WINDOW, *bufs[:4])
         lockstat.decide_windows(*bufs[:4], k, MIN_WINDOW, 0.5, 0.25, False, *bufs[4:], np.zeros(3, np.bool_))
 
     def start(self):
@@ -215,14 +204,14 @@ class lock_detector_cc(gr.sync_block):
 
     # --- streaming -------------------------------------------------------------------
     def _buffers(self, n):
-        """Per-window work arrays with room for the windows completed in ``n`` samples."""
+        """Per-window work arrays with room for the windows in ``n`` samples."""
         need = n // self._window + 1
         if self._bufs is None or len(self._bufs[0]) < need:
             self._bufs = tuple(np.empty(need) for _ in range(6)) + (np.empty(need, np.bool_),)
         return self._bufs
 
     def work(self, input_items, output_items):
-        x = input_items[0][self._history - 1:]     # skip the unused history
+        x = input_items[0][self._skip:]            # skip the unused history
         n = len(x)
         output_items[0][:] = x
         try:
@@ -235,9 +224,11 @@ class lock_detector_cc(gr.sync_block):
 
     def _detect(self, x, n):
         """Decide the windows completed in ``x``; place tags and publish messages."""
+        if n % self._window:                       # the output multiple rules this out
+            raise RuntimeError(f"work() got {n} samples, not a whole number of {self._window}-sample windows")
         proj, m2, m4, valid, metric, esn0_db, decisions = self._buffers(n)
         k = lockstat.window_sums(x, self._power, self._rot[0], self._rot[1], self._window,
-                                 self._acc, proj, m2, m4, valid)
+                                 proj, m2, m4, valid)
         upstream = self._upstream_tags(n)
         if k == 0:
             self._apply_tags(upstream)

@@ -43,7 +43,7 @@ API
 ``m2m4_esn0(m2, m4)``, ``esn0_db(esn0)`` (element-wise; their scalar numba
 forms ``m2m4_esn0_scalar``, ``esn0_db_scalar`` can be called from kernels);
 numba kernels ``unit_projection`` (one sample, for use inside other kernels),
-``window_sums`` (chunks with carried partial-window state), ``hysteresis`` and
+``window_sums`` (sums of whole windows, SIMD), ``hysteresis`` and
 ``decide_windows`` (metric, Es/N0 and decisions of completed windows).
 """
 
@@ -62,20 +62,6 @@ DEFAULT_UNLOCK_P_FA = 1e-2
 #: Reported Es/N0 is clamped to this range, dB (the estimate is +-inf at the extremes).
 ESN0_DB_MIN = -60.0
 ESN0_DB_MAX = 100.0
-
-# acc[] layout of window_sums: partial sums of the window in progress -----------
-A_PROJ = 0     # sum of cos(M (arg y - point_angle)) over valid samples
-A_M2 = 1       # sum of |y|^2 over valid samples
-A_M4 = 2       # sum of |y|^4 over valid samples
-A_VALID = 3    # number of valid samples
-A_FILL = 4     # number of samples (valid or gap) in the window so far
-ACC_SIZE = 5
-
-
-def new_accumulator():
-    """Partial-window state for :func:`window_sums`: an empty window."""
-    return np.zeros(ACC_SIZE, dtype=np.float64)
-
 
 # --- thresholds ---------------------------------------------------------------------
 
@@ -211,73 +197,110 @@ def unit_projection(z, power, rot):
     return _projection(zr, zi, p, power, rot), True
 
 
+#: numba flags of the window sums: reassociation lets the sums use SIMD lanes. The
+#: grouping then depends only on a sample's position in its window, never on where a
+#: call starts, so a window's sums are the same whatever the stream's chunking.
+#: No ``nnan``/``ninf``: the gap test must see NaN and Inf. Inlined functions are
+#: compiled with their caller's flags, so ``window_sums`` carries them too.
+_SIMD_MATH = {"reassoc", "contract", "nsz", "arcp"}
+
+
 @njit(cache=True, inline="always")
-def _segment(x, i0, i1, power, rot, s_proj, s_m2, s_m4, s_valid):
-    """Add samples ``x[i0:i1]`` to the running window sums. Inlined with a constant
-    ``power`` for the common M, so the power loop unrolls."""
-    for i in range(i0, i1):
-        zr = np.float64(x[i].real)
-        zi = np.float64(x[i].imag)
+def _pair_power(ur, ui, m):
+    """(ur + j ui)**m on a real pair by repeated squaring (m a positive integer)."""
+    rr = 1.0
+    ri = 0.0
+    while m > 0:
+        if m & 1:
+            rr, ri = rr * ur - ri * ui, rr * ui + ri * ur
+        ur, ui = ur * ur - ui * ui, 2.0 * ur * ui
+        m >>= 1
+    return rr, ri
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _unit_pair_power(zr, zi, p, power):
+    """(z/|z|)**M for ``z = zr + j zi`` with ``p = |z|^2 > 0``, as a real pair.
+    M = 2, 4, 8, 16 square z^2/|z|^2 (no square root), written out so that the
+    code has no loop left once M is a constant; other M use repeated squaring."""
+    if power == 2 or power == 4 or power == 8 or power == 16:
+        inv = 1.0 / p
+        ur = (zr * zr - zi * zi) * inv
+        ui = 2.0 * zr * zi * inv
+        if power >= 4:
+            ur, ui = ur * ur - ui * ui, 2.0 * ur * ui
+        if power >= 8:
+            ur, ui = ur * ur - ui * ui, 2.0 * ur * ui
+        if power == 16:
+            ur, ui = ur * ur - ui * ui, 2.0 * ur * ui
+        return ur, ui
+    inv = 1.0 / np.sqrt(p)
+    if power == 1:
+        return zr * inv, zi * inv
+    return _pair_power(zr * inv, zi * inv, power)
+
+
+#: numba flags of the window sums: reassociation lets the sums use SIMD lanes. The
+#: grouping then depends only on a sample's position in its window, never on where a
+#: call starts, so a window's sums are the same whatever the stream's chunking.
+#: No ``nnan``/``ninf``: the gap test must see NaN and Inf. Inlined functions are
+#: compiled with their caller's flags, so ``window_sums`` carries them too.
+_SIMD_MATH = {"reassoc", "contract", "nsz", "arcp"}
+
+
+@njit(cache=True, inline="always", fastmath=_SIMD_MATH, error_model="numpy")
+def _one_window(xs, power, rot_re, rot_im):
+    """Sums (projection, |y|^2, |y|^4, valid count) of one window given as interleaved
+    float32 I/Q ``xs``. Branch-free (gaps are masked, not skipped) so that it vectorises."""
+    s_proj = 0.0
+    s_m2 = 0.0
+    s_m4 = 0.0
+    s_valid = 0.0
+    for i in range(xs.shape[0] // 2):
+        zr = np.float64(xs[2 * i])
+        zi = np.float64(xs[2 * i + 1])
         p = zr * zr + zi * zi
-        if p > 0.0 and p < np.inf:
-            s_proj += _projection(zr, zi, p, power, rot)
-            s_m2 += p
-            s_m4 += p * p
-            s_valid += 1.0
+        ok = (p > 0.0) & (p < np.inf)
+        zr = zr if ok else 0.0
+        zi = zi if ok else 0.0
+        p = p if ok else 0.0
+        ur, ui = _unit_pair_power(zr, zi, p if ok else 1.0, power)
+        s_proj += ur * rot_re - ui * rot_im
+        s_m2 += p
+        s_m4 += p * p
+        s_valid += 1.0 if ok else 0.0
     return s_proj, s_m2, s_m4, s_valid
 
 
-@njit(nogil=True, cache=True)
-def window_sums(x, power, rot_re, rot_im, window, acc, proj, m2, m4, valid):
-    """Accumulate lock-statistic and moment sums of ``x`` over windows of ``window`` samples.
+@njit(nogil=True, cache=True, fastmath=_SIMD_MATH, error_model="numpy")
+def window_sums(x, power, rot_re, rot_im, window, proj, m2, m4, valid):
+    """Lock-statistic and moment sums of the whole windows of ``window`` samples in ``x``.
 
-    ``acc`` (see ``A_*``) carries the window in progress between calls, so any
-    split of a stream gives the same windows and bit-identical sums. For each
-    window completed in this call, writes its sums (not means) to ``proj``,
-    ``m2``, ``m4`` and its number of valid samples to ``valid`` (each at least
-    ``len(x) // window + 1`` long) and returns how many windows were completed.
-    Gap samples (NaN, Inf, 0) count toward the window length but add nothing.
+    ``x`` (complex64) starts on a window boundary; window k covers
+    ``x[k window:(k + 1) window]``; a trailing part shorter than a window is not
+    used (the lock detector only ever passes whole windows). For each window writes
+    its sums (not means) to ``proj``, ``m2``, ``m4`` and its number of valid samples
+    to ``valid`` (each at least ``len(x) // window`` long); returns the number of
+    windows. A window's sums depend only on its own samples (bit for bit), so any
+    split of a stream at window boundaries gives the same results. Gap samples
+    (NaN, Inf, 0) count toward the window length but add nothing.
     """
-    rot = complex(rot_re, rot_im)
-    s_proj = acc[A_PROJ]
-    s_m2 = acc[A_M2]
-    s_m4 = acc[A_M4]
-    s_valid = acc[A_VALID]
-    fill = int(acc[A_FILL])
-    done = 0
-    n = 0
-    total = x.shape[0]
-    while n < total:
-        stop = min(total, n + window - fill)
-        if power == 1:
-            s_proj, s_m2, s_m4, s_valid = _segment(x, n, stop, 1, rot, s_proj, s_m2, s_m4, s_valid)
+    xf = x.view(np.float32)
+    count = x.shape[0] // window
+    for k in range(count):
+        xs = xf[2 * k * window:2 * (k + 1) * window]
+        if power == 1:                 # constant M for the common cases: straight-line code
+            sums = _one_window(xs, 1, rot_re, rot_im)
         elif power == 2:
-            s_proj, s_m2, s_m4, s_valid = _segment(x, n, stop, 2, rot, s_proj, s_m2, s_m4, s_valid)
+            sums = _one_window(xs, 2, rot_re, rot_im)
         elif power == 4:
-            s_proj, s_m2, s_m4, s_valid = _segment(x, n, stop, 4, rot, s_proj, s_m2, s_m4, s_valid)
+            sums = _one_window(xs, 4, rot_re, rot_im)
         elif power == 8:
-            s_proj, s_m2, s_m4, s_valid = _segment(x, n, stop, 8, rot, s_proj, s_m2, s_m4, s_valid)
+            sums = _one_window(xs, 8, rot_re, rot_im)
         else:
-            s_proj, s_m2, s_m4, s_valid = _segment(x, n, stop, power, rot, s_proj, s_m2, s_m4, s_valid)
-        fill += stop - n
-        n = stop
-        if fill == window:
-            proj[done] = s_proj
-            m2[done] = s_m2
-            m4[done] = s_m4
-            valid[done] = s_valid
-            done += 1
-            s_proj = 0.0
-            s_m2 = 0.0
-            s_m4 = 0.0
-            s_valid = 0.0
-            fill = 0
-    acc[A_PROJ] = s_proj
-    acc[A_M2] = s_m2
-    acc[A_M4] = s_m4
-    acc[A_VALID] = s_valid
-    acc[A_FILL] = fill
-    return done
+            sums = _one_window(xs, power, rot_re, rot_im)
+        proj[k], m2[k], m4[k], valid[k] = sums
+    return count
 
 
 @njit(nogil=True, cache=True)
@@ -318,7 +341,6 @@ def decide_windows(proj, m2, m4, valid, count, window, lock_threshold, unlock_th
 
 __all__ = [
     "DEFAULT_LOCK_P_FA", "DEFAULT_UNLOCK_P_FA", "ESN0_DB_MIN", "ESN0_DB_MAX",
-    "A_PROJ", "A_M2", "A_M4", "A_VALID", "A_FILL", "ACC_SIZE", "new_accumulator",
     "noise_std", "false_lock_threshold", "false_lock_probability", "default_thresholds",
     "c_m", "projection_variance", "detection_probability",
     "m2m4_esn0_scalar", "esn0_db_scalar", "m2m4_esn0", "esn0_db",

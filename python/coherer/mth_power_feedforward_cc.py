@@ -8,17 +8,12 @@ import pmt
 from gnuradio import gr
 
 from . import _feedforward_kernel as K
+from ._long_calls import request_long_calls
 from .design import MAX_POWER
 from .mth_power_loop_cc import default_point_angle
 
 #: Largest accepted window, samples.
 MAX_WINDOW = 65536
-
-#: Items per work() call the block asks GNU Radio for. A Python block pays a fixed
-#: cost per call (tens of microseconds), so it declares this much history (GNU Radio
-#: then gives the upstream buffer room for about twice as many items; the history
-#: itself is not used) and an output buffer of twice this size.
-CALL_ITEMS = 16384
 
 #: Names accepted for ``weighting`` and the kernel code of each.
 WEIGHTINGS = {
@@ -113,10 +108,9 @@ class mth_power_feedforward_cc(gr.sync_block):
     a possible change of the 2 pi / M ambiguity. ``phase`` weighting ignores
     amplitude. For ``power``, amplitudes above 10^(294/M) are weighted as 10^(294/M).
 
-    Throughput: the block asks GNU Radio for calls of up to CALL_ITEMS (16384)
-    samples (a declared, unused history enlarges the upstream buffer; its own
-    output buffers are 32768 items), because a Python block pays a fixed cost
-    per call. Unconnected diagnostic outputs cost nothing.
+    Throughput: the block asks GNU Radio for calls of up to 131072 samples
+    (see ``_long_calls``), because a Python block pays a fixed cost per call.
+    Unconnected diagnostic outputs cost nothing.
     """
 
     def __init__(self, sample_rate, power, window, point_angle=None, weighting=None,
@@ -158,11 +152,7 @@ class mth_power_feedforward_cc(gr.sync_block):
                                out_sig=out_sig)
         # upstream tags (and the reset tags this block reads) are moved by the delay
         self.declare_sample_delay(self._delay)
-        self.set_history(CALL_ITEMS)
-        level = self.logger.get_string_level()
-        self.logger.set_level("warn")          # GNU Radio logs this deliberate setting at info level
-        self.set_min_output_buffer(2 * CALL_ITEMS)
-        self.logger.set_level(level)
+        self._skip = request_long_calls(self)  # leading history samples work() skips
 
         rot = np.exp(-1j * power * self._point_angle)
         roots = np.exp(2j * pi * np.arange(power) / power)
@@ -224,7 +214,7 @@ class mth_power_feedforward_cc(gr.sync_block):
 
     # --- streaming -------------------------------------------------------------------
     def work(self, input_items, output_items):
-        x = input_items[0][CALL_ITEMS - 1:]       # skip the (unused) history
+        x = input_items[0][self._skip:]           # skip the (unused) history
         n = len(x)
         resets = self._no_resets
         if self._reset_key_pmt is not None:

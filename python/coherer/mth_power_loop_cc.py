@@ -9,6 +9,7 @@ import pmt
 from gnuradio import gr
 
 from . import _loop_kernel as K
+from ._long_calls import request_long_calls
 from . import acquisition, design, lockstat, metadata
 
 #: Default averaging length of the signal-power (M2M4) estimator, samples:
@@ -34,9 +35,6 @@ SLIP_REFERENCE_STAGES_BW = (1.0, 0.4, 0.15)
 SLIP_ANGLE_BETA_PER_BT = 2.0
 #: Most events remembered by acquisition_log() and lock_log().
 EVENT_LOG = 1000
-#: Samples per work() call the block arranges for (history and output buffer): long
-#: calls amortise the fixed cost of a Python work() call, about 90 us.
-CALL_ITEMS = 32768
 
 
 def default_point_angle(power):
@@ -121,13 +119,7 @@ class mth_power_loop_cc(gr.sync_block):
         if self._diagnostics:
             out_sig = [np.complex64, np.complex64, np.float32, np.float32]
         gr.sync_block.__init__(self, name=name, in_sig=[np.complex64], out_sig=out_sig)
-        # the history makes the upstream buffer hold CALL_ITEMS samples whatever the
-        # source; the output buffer lets this block write as many per call
-        self.set_history(CALL_ITEMS)
-        level = self.logger.get_string_level()
-        self.logger.set_level("warn")          # set_min_output_buffer logs on stdout at info
-        self.set_min_output_buffer(2 * CALL_ITEMS)
-        self.logger.set_level(level)
+        self._skip = request_long_calls(self)  # leading history samples work() skips
 
         self._lock = threading.Lock()          # serialises setters / message handler
         self._spec = (float(noise_bw_hz), float(damping), int(loop_order))
@@ -330,7 +322,7 @@ class mth_power_loop_cc(gr.sync_block):
 
     # --- streaming -------------------------------------------------------------------
     def work(self, input_items, output_items):
-        x = input_items[0][CALL_ITEMS - 1:]     # the history is there only for the buffer size
+        x = input_items[0][self._skip:]          # the history is there only for the buffer size
         n = len(x)
         start = self.nitems_read(0)
         params = self._params

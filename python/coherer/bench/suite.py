@@ -20,7 +20,7 @@ from gnuradio import gr
 
 from .. import _loop_kernel as K
 from ..mth_power_loop_cc import mth_power_loop_cc
-from ..mth_power_loop_cc import CALL_ITEMS
+from .._long_calls import CALL_ITEMS
 from ..squaring_loop_cc import squaring_loop_cc
 from . import creference, measure, soak as soak_mod, stream
 
@@ -71,18 +71,22 @@ def _optional_block(module_name, class_name, *args, **kwargs):
 
 
 def block_specs():
-    """(name, power, factory or None, is_loop, skip note) for every benchmarked block."""
+    """(name, power, factory or None, is_loop, skip note, input stream) for every
+    benchmarked block. Input streams: ``psk{M}`` (carrier offset, random phase: what a
+    loop or the feed-forward block gets) and ``corrected{M}`` (carrier removed: what
+    the lock detector gets behind a locked loop; a rotating input would make it
+    change state, tag and publish a message at almost every window)."""
     specs = [
-        ("squaring loop (M=2)", 2, _squaring, True, None),
-        ("M-th power loop M=4", 4, _loop(4), True, None),
-        ("M-th power loop M=8", 8, _loop(8), True, None),
-        ("third-order loop (M=2)", 2, _loop(2, loop_order=3), True, None),
+        ("squaring loop (M=2)", 2, _squaring, True, None, "psk2"),
+        ("M-th power loop M=4", 4, _loop(4), True, None, "psk4"),
+        ("M-th power loop M=8", 8, _loop(8), True, None, "psk8"),
+        ("third-order loop (M=2)", 2, _loop(2, loop_order=3), True, None, "psk2"),
     ]
     make, note = _optional_block("lock_detector_cc", "lock_detector_cc", SAMPLE_RATE, 2)
-    specs.append(("lock detector (M=2)", 2, make, False, note))
+    specs.append(("lock detector (M=2)", 2, make, False, note, "corrected2"))
     make, note = _optional_block("mth_power_feedforward_cc", "mth_power_feedforward_cc",
                                  SAMPLE_RATE, 4, FEEDFORWARD_WINDOW)
-    specs.append((f"feed-forward M=4 (window {FEEDFORWARD_WINDOW})", 4, make, False, note))
+    specs.append((f"feed-forward M=4 (window {FEEDFORWARD_WINDOW})", 4, make, False, note, "psk4"))
     return specs
 
 
@@ -148,6 +152,7 @@ def run(quick=False, soak=False, soak_samples=SOAK_SAMPLES, progress=None):
         for power in (2, 4, 8):
             data[power] = stream.psk_stream(power, n, seed=power)
             stream.write_cf32(tmp / f"psk{power}.cf32", data[power])
+        stream.write_cf32(tmp / "corrected2.cf32", stream.corrected_stream(2, n, seed=2))
 
         # first: a fresh block in a process that has not run the kernel yet
         say("first-sample latency")
@@ -161,14 +166,14 @@ def run(quick=False, soak=False, soak_samples=SOAK_SAMPLES, progress=None):
                                  "compiler": _compiler_version(creference.find_compiler())}
         c_by_power = {}
 
-        for name, power, make, is_loop, note in block_specs():
+        for name, power, make, is_loop, note, input_name in block_specs():
             if make is None:
                 result["skipped"].append({"block": name, "reason": note})
                 say(f"skipped {name}: {note}")
                 continue
             say(name)
-            path = tmp / f"psk{power}.cf32"
-            row = {"block": name, "power": power, "kernel": None, "c": None}
+            path = tmp / f"{input_name}.cf32"
+            row = {"block": name, "power": power, "input": input_name, "kernel": None, "c": None}
             if is_loop:
                 row["kernel"] = measure.summarise_both(measure.kernel_rates(make, data[power], reps))
                 blk = make()
@@ -283,6 +288,8 @@ def format_table(result):
              f"{m['load_average'][0]:.2f}, at end {m['load_average_end'][0]:.2f}",
              f"C reference: {result['c_reference']['command']} "
              f"({result['c_reference']['compiler']}); (x) = C figure of the loop with the same M",
+             f"inputs: noisy M-PSK at Es/N0 {result['esn0_db']:g} dB with a carrier offset; the lock "
+             "detector gets the same with the carrier removed (as behind a locked loop)",
              "", "Msps per second of wall-clock time (what a live stream gets):"]
     lines += _table(result, "wall")
     lines += ["", "Msps per second of CPU time of the process (cost; not inflated by other load):"]

@@ -14,6 +14,8 @@ from statistics import median
 import numpy as np
 from gnuradio import blocks, gr
 
+from .._long_calls import request_long_calls
+
 #: A figure whose repetitions spread by more than this fraction of the median is marked noisy.
 NOISY_SPREAD = 0.10
 
@@ -36,13 +38,7 @@ class copy_cc(gr.sync_block):
     def __init__(self, call_items=1):
         gr.sync_block.__init__(self, name="bench_copy_cc", in_sig=[np.complex64],
                                out_sig=[np.complex64])
-        self._skip = max(1, int(call_items)) - 1
-        if self._skip:
-            self.set_history(self._skip + 1)
-            level = self.logger.get_string_level()
-            self.logger.set_level("warn")
-            self.set_min_output_buffer(2 * (self._skip + 1))
-            self.logger.set_level(level)
+        self._skip = request_long_calls(self, int(call_items)) if call_items > 1 else 0
 
     def work(self, input_items, output_items):
         output_items[0][:] = input_items[0][self._skip:]

@@ -7,6 +7,8 @@ where they are used.
 """
 
 import math
+import subprocess
+import sys
 
 import numpy as np
 import pytest
@@ -638,3 +640,32 @@ def test_strided_responses_equal_every_sample_simulation():
     assert np.allclose(strided.freq_step_error, full.freq_step_error[index], rtol=0, atol=1e-12)
     assert np.allclose(strided.freq_step_nco, full.freq_step_nco[index], rtol=0, atol=1e-12)
     assert strided.phase_metrics.settling_time_s == pytest.approx(full.phase_metrics.settling_time_s, abs=34 / 1e4)
+
+
+@pytest.mark.parametrize("n", [1, 2, 3, 4, 9])
+def test_solve_small_matches_numpy(n):
+    # Reference: numpy.linalg.solve (LAPACK gesv), on seeded random systems.
+    rng = np.random.default_rng(n)
+    a = rng.standard_normal((n, n)) + n * np.eye(n)
+    b = rng.standard_normal(n)
+    np.testing.assert_allclose(design.solve_small(a, b), np.linalg.solve(a, b), rtol=1e-12, atol=1e-12)
+    # a zero leading pivot needs the row exchange
+    perm = np.roll(np.eye(n), 1, axis=0) if n > 1 else np.eye(1)
+    np.testing.assert_allclose(design.solve_small(perm, b), np.linalg.solve(perm, b), atol=1e-15)
+
+
+def test_solve_small_rejects_singular():
+    with pytest.raises(np.linalg.LinAlgError):
+        design.solve_small(np.ones((3, 3)), np.ones(3))
+
+
+def test_designing_a_loop_leaves_no_busy_threads():
+    # numpy's threaded BLAS spins worker threads after a LAPACK solve; the designer must
+    # not start them (they would take a core from the flowgraph). Spinning threads burn
+    # ~0.1 s of CPU in a 0.3 s sleep (measured); an idle process burns ~0. A fresh
+    # process, because other tests here call numpy's LAPACK on purpose.
+    code = ("import time; from gnuradio.coherer import design; "
+            "design.design_loop(1e6, 2, 1000.0, loop_order=3); "
+            "c = time.process_time(); time.sleep(0.3); print(time.process_time() - c)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert float(out.stdout) < 0.03

@@ -173,8 +173,35 @@ def noise_bandwidth_bt(g_gains):
     n = len(b)
     eye = np.eye(n)
     kron = np.kron(delta, eye) + np.kron(eye, delta) + np.kron(delta, delta)
-    p = np.linalg.solve(kron, -np.outer(b, b).ravel()).reshape(n, n)
+    p = solve_small(kron, -np.outer(b, b).ravel()).reshape(n, n)
     return 0.5 * float(p[0, 0])
+
+
+def solve_small(a, b):
+    """``x`` with ``a x = b`` for a small square ``a`` (n <= 9 here), by Gaussian
+    elimination with partial pivoting in numpy.
+
+    Used instead of ``np.linalg.solve`` because the threaded BLAS behind numpy's
+    LAPACK starts worker threads even for a 9 x 9 system, and they keep a core
+    busy (spinning) for a while after every call: in a flowgraph that core is
+    taken from the blocks. Raises ``np.linalg.LinAlgError`` if ``a`` is singular.
+    """
+    m = np.array(a, dtype=float)
+    x = np.array(b, dtype=float)
+    n = len(x)
+    for col in range(n):
+        pivot = col + int(np.argmax(np.abs(m[col:, col])))
+        if m[pivot, col] == 0.0:
+            raise np.linalg.LinAlgError("singular matrix")
+        if pivot != col:
+            m[[col, pivot]] = m[[pivot, col]]
+            x[[col, pivot]] = x[[pivot, col]]
+        factors = m[col + 1:, col] / m[col, col]
+        m[col + 1:, col:] -= np.outer(factors, m[col, col:])
+        x[col + 1:] -= factors * x[col]
+    for row in range(n - 1, -1, -1):
+        x[row] = (x[row] - m[row, row + 1:] @ x[row + 1:]) / m[row, row]
+    return x
 
 
 def impulse_response(g_gains, n):

@@ -2,17 +2,17 @@
 """Per-sample kernel of the feed-forward M-th power (Viterbi & Viterbi) phase estimator.
 
 numba, releases the GIL. A plain function of arrays: the input samples, the
-output arrays, a float64 ``state`` array of scalars and the ring buffers of
+output arrays, a float64 ``state`` array of scalars and the arrays of
 :class:`FeedforwardBuffers` (everything the estimator remembers between
-calls). Calling it on one long array or on any split of it gives bit-identical
-results: every operation depends only on the sample's position since the
-last reset, never on where a call starts.
+calls, plus preallocated scratch). Calling it on one long array or on any
+split of it gives bit-identical results: every operation depends only on the
+sample's position since the last reset, never on where a call starts.
 
 Per input sample i (W = window, D = W // 2, M = power, pa = point_angle)::
 
     t_i    = F(|x_i|) e^{j M arg x_i}                 0 for a gap (NaN, Inf, 0)
-    S_i    = sum of t over [max(r, i - W + 1), i]     r = last reset (or stream start)
-    w_i    = S_i e^{-j M pa} / |S_i|                  = e^{j M phi_i}, phi_i in (-pi/M, pi/M]
+    S_i    = e^{-j M pa} sum of t over [max(r, i - W + 1), i]   r = last reset (or stream start)
+    phi_i  = arg(S_i) / M in (-pi/M, pi/M]
     theta_i = theta_{i-1} + wrap(phi_i - theta_{i-1})  wrap into [-pi/M, pi/M): V&V unwrapping
     y      = x_{i-D} e^{-j theta_i}                   output i (delay D samples)
 
@@ -24,24 +24,41 @@ Weightings F: ``WEIGHT_POWER`` |x|^M (F(|x|) e^{jM arg x} = x^M), ``WEIGHT_MAGNI
 |x|, ``WEIGHT_PHASE`` 1 (phase only).
 
 Implementation notes
-    * Each call is processed in pieces of up to PIECE samples, each in four
-      passes: terms (element-wise), sliding sums (serial), principal roots
-      (element-wise), unwrapping / delay line / outputs (serial).
+    * Each call is processed in pieces of up to PIECE samples. Only two passes
+      over a piece are serial: the window sums and the unwrapping index; every
+      other pass is element-wise and written so that numba vectorises it
+      (float32 views of the complex64 arrays, selects instead of branches, no
+      fastmath: vector and scalar iterations round identically).
+    * Terms in float64 (|x|^M spans far more than float32's range); for the
+      phase weighting and even M the unit phasor e^{j2 arg x} = x^2 / |x|^2
+      needs one division and no square root.
     * Sliding sum without cancellation: the stream since the reset is cut
       into blocks of W samples. The window sum is the suffix sum of the
-      previous block (stored when it completed, reverse cumulative sum) plus
-      the running prefix sum of the current block. Nothing is ever
-      subtracted, so one huge sample cannot leave a residue behind once it is
-      out of the window, and rounding cannot drift.
+      previous block (reverse cumulative sum, formed when the block
+      completed) plus the running prefix sum of the current block, both in
+      float64 in a fixed order. Nothing is ever subtracted, so one huge
+      sample cannot leave a residue behind once it is out of the window, and
+      rounding cannot drift.
+    * Each S is rotated by e^{-jM pa} and scaled by a power of two (exact)
+      so that its larger component lies in [1, 4): signs and the unwrapping
+      decision are unchanged and the principal root can be taken in float32.
+    * Principal M-th root, M = 2^k: k half-angle steps, each the bisector of
+      h and the positive real axis, (Re h + |h|, Im h) or, for Re h < 0, the
+      same direction without cancellation, (|Im h|, +-(|h| - Re h)); one
+      normalisation; no trigonometry. Other M: atan2/cos/sin (float64).
+      S on the negative real axis (arg pi) gives +pi/M.
     * The unwrapping decision uses only the signs of Im S_{i-1}, Im S_i and of
-      their cross product (exactly the rule above); the phasor e^{j theta} is
-      the principal M-th root of w (half-angle steps for M = 2, 4, 8, 16, else
-      atan2/cos/sin) times e^{j 2 pi k / M}, k the unwrapping index mod M.
-    * When S_i = 0 (only gaps in the window) theta is held.
+      their cross product (exactly the rule above); it is an increment of -1,
+      0 or +1 of the index k (mod M), computed element-wise. The serial pass
+      only accumulates k; the phasor e^{j theta} is the principal root times
+      e^{j 2 pi k / M}, float32.
+    * When S_i = 0 (only gaps in the window, or terms that cancel) theta is
+      held and the decision for the next nonzero S uses the last nonzero one.
     * A reset at sample r: input samples r-D .. r-1 not yet output are
       corrected with the last estimate of their own segment (window ending
       at r-1); the window then restarts empty and the first estimate after
       the reset takes the principal value (k = 0).
+    * Corrected output x_{i-D} e^{-j theta_i} in float32 (complex64 in and out).
 """
 
 import numpy as np
@@ -59,12 +76,12 @@ S_POS = 2          # position within the current block of W samples
 S_PREFIX_RE = 3    # prefix sum of the current block
 S_PREFIX_IM = 4
 S_HAVE = 5         # 1.0 once an estimate exists in this segment
-S_W_RE = 6         # last w (unnormalised S e^{-jM pa}), for the unwrapping decision
+S_W_RE = 6         # last nonzero S (rotated and scaled), for the unwrapping decision
 S_W_IM = 7
 S_K = 8            # unwrapping index k mod M
 S_P_RE = 9         # current phasor e^{j theta}
 S_P_IM = 10
-S_ASSIGNED = 11    # every input sample before this absolute index has its phase assigned
+S_LAST_RESET = 11  # absolute index of the latest reset (NO_RESET before the first)
 S_GAPS = 12        # number of gap samples (NaN, Inf or zero)
 S_FREQ = 13        # latest frequency estimate, rad/sample
 STATE_SIZE = 14
@@ -73,38 +90,52 @@ STATE_SIZE = 14
 #: weighting): |x|^M <= 1e294, so a sum of up to 65536 terms stays finite.
 POWER_WEIGHT_EXPONENT_CAP = 294.0
 SATURATE = 2 ** 52
+#: S_LAST_RESET before any reset: far enough back that no output is held.
+NO_RESET = -float(2 ** 52)
 #: Samples per pass: a call is processed in pieces of at most this many samples,
 #: so the scratch arrays stay small and in cache whatever the call size.
 PIECE = 4096
-TWO_PI = 2.0 * np.pi
+#: Decision code of a sample whose window sum is 0 (theta held).
+ZERO_SUM = 2
 
 
 class FeedforwardBuffers:
-    """Ring buffers of one estimator instance (all of length ``window`` or ``window + 1``).
+    """Arrays of one estimator instance: what it remembers between calls and scratch.
 
-    ``terms``: terms t of the current block; ``suffix``: suffix sums of the
-    previous block (``suffix[window] == 0``); ``delay_x``: the last ``window``
-    input samples; ``delay_p``/``delay_f``: phasor and frequency (rad/sample)
-    assigned to each pending input sample; ``history_p``: the phasor of the
-    last ``window`` estimates (frequency diagnostic).
+    ``ring_re``/``ring_im``: terms of the current block (``window``);
+    ``suffix_re``/``suffix_im``: suffix sums of the previous block (``window + 1``,
+    last entry 0); ``delay_x``: the last ``window // 2`` input samples (complex64);
+    ``delay_p``/``delay_f``: phasor and frequency (rad/sample) assigned at a reset
+    to each sample still in the delay; ``hist_re``/``hist_im``: the phasor of the
+    last ``window`` estimates (frequency diagnostic). The rest (length PIECE) is
+    scratch, overwritten by every call.
     """
 
     def __init__(self, window):
-        self.terms = np.zeros(window, np.complex128)
-        self.suffix = np.zeros(window + 1, np.complex128)
-        self.delay_x = np.zeros(window, np.complex128)
+        self.ring_re = np.zeros(window)
+        self.ring_im = np.zeros(window)
+        self.suffix_re = np.zeros(window + 1)
+        self.suffix_im = np.zeros(window + 1)
+        self.delay_x = np.zeros(window // 2, np.complex64)
         self.delay_p = np.ones(window, np.complex128)
-        self.delay_f = np.zeros(window, np.float64)
-        self.history_p = np.ones(window, np.complex128)
+        self.delay_f = np.zeros(window)
+        self.hist_re = np.ones(window)
+        self.hist_im = np.zeros(window)
+        self.scratch = np.zeros((5, PIECE))              # t re/im, S re/im, scale (float64)
+        self.scratch32 = np.zeros((4, PIECE), np.float32)  # root re/im, phasor re/im
+        self.codes = np.zeros((2, PIECE), np.int8)       # decision, index k
 
     def arrays(self):
-        return self.terms, self.suffix, self.delay_x, self.delay_p, self.delay_f, self.history_p
+        return (self.ring_re, self.ring_im, self.suffix_re, self.suffix_im, self.delay_x,
+                self.delay_p, self.delay_f, self.hist_re, self.hist_im, self.scratch,
+                self.scratch32, self.codes)
 
 
 def new_state():
     """A fresh state array: nothing seen, phase 0."""
     st = np.zeros(STATE_SIZE, dtype=np.float64)
     st[S_P_RE] = 1.0
+    st[S_LAST_RESET] = NO_RESET
     return st
 
 
@@ -113,104 +144,142 @@ def power_weight_cap(power):
     return 10.0 ** (POWER_WEIGHT_EXPONENT_CAP / power)
 
 
-@njit(cache=True, error_model="numpy")
-def _mth_power_terms(x, power, weighting, tr, ti, valid, br, bi, mag):
-    """Terms t = F(|x|) e^{j M arg x} of every sample (0 for a gap), element-wise
-    (``br``, ``bi``, ``mag``: scratch of the same length).
+# --- 1. terms (element-wise) ------------------------------------------------------------
 
-    Written as separate simple loops over the arrays.
-    """
-    n_items = x.shape[0]
+@njit(cache=True, error_model="numpy")
+def _mth_power_terms(xf, power, weighting, tr, ti, scale):
+    """Terms t = F(|x|) e^{j M arg x} (0 for a gap) of the samples in the float32 view
+    ``xf`` (I at 2n, Q at 2n+1) into ``tr``, ``ti``; ``scale``: scratch. Returns the
+    number of gaps."""
+    n_items = tr.shape[0]
+    gaps = 0
+    even = power % 2 == 0
     cap = 10.0 ** (POWER_WEIGHT_EXPONENT_CAP / power)
     cap2 = cap * cap
+    if weighting == WEIGHT_PHASE and even and power <= 4:
+        # e^{j2 arg x} = x^2 / |x|^2, squared once more for M = 4
+        square = power == 4
+        for n in range(n_items):
+            xr = np.float64(xf[2 * n])
+            xi = np.float64(xf[2 * n + 1])
+            p2 = xr * xr + xi * xi
+            ok = (p2 > 0.0) & (p2 < np.inf)
+            inv = 1.0 / (p2 if ok else 1.0)
+            vr = (xr * xr - xi * xi) * inv
+            vi = 2.0 * xr * xi * inv
+            if square:
+                a = vr * vr - vi * vi
+                vi = 2.0 * vr * vi
+                vr = a
+            tr[n] = vr if ok else 0.0
+            ti[n] = vi if ok else 0.0
+            gaps += 0 if ok else 1
+        return gaps
+    # general: base b and exponent e with t = mag * b^e
+    #   phase, even M: b = x^2/|x|^2, e = M/2        phase, odd M: b = x/|x|, e = M
+    #   power, even M: b = x^2 c^2, e = M/2           power, odd M: b = x c, e = M
+    #   magnitude: as phase, times mag = |x| (in ``scale``)
+    # (c = 1, or cap/|x| above the cap)
+    half = even
+    expo = power // 2 if half else power
     for n in range(n_items):
-        xr = np.float64(x[n].real)
-        xi = np.float64(x[n].imag)
+        xr = np.float64(xf[2 * n])
+        xi = np.float64(xf[2 * n + 1])
         p2 = xr * xr + xi * xi
-        ok = p2 > 0.0 and p2 < np.inf          # false for NaN, Inf and zero
-        valid[n] = ok
-        r = np.sqrt(p2)
+        ok = (p2 > 0.0) & (p2 < np.inf)
+        ps = p2 if ok else 1.0
         if weighting == WEIGHT_POWER:
-            scale = np.sqrt(cap2 / p2) if p2 > cap2 else 1.0
+            g2 = cap2 / ps if ps > cap2 else 1.0
         else:
-            scale = 1.0 / r                    # unit phasor
-        br[n] = xr * scale if ok else 0.0
-        bi[n] = xi * scale if ok else 0.0
-        mag[n] = r if ok else 0.0
-        tr[n] = 1.0 if ok else 0.0
-        ti[n] = 0.0
-    m = power
-    while m > 0:                               # t = b^M by repeated squaring
-        if m & 1:
+            g2 = 1.0 / ps
+        if half:
+            br = (xr * xr - xi * xi) * g2
+            bi = 2.0 * xr * xi * g2
+        else:
+            g = np.sqrt(g2)
+            br = xr * g
+            bi = xi * g
+        tr[n] = br if ok else 0.0
+        ti[n] = bi if ok else 0.0
+        scale[n] = np.sqrt(ps) if ok else 0.0
+        gaps += 0 if ok else 1
+    # b^e by repeated squaring: result kept in (tr, ti), base squared in place
+    # in the upper bits; with e = 2^j only squarings are needed
+    if expo & (expo - 1) == 0:
+        m = expo
+        while m > 1:
             for n in range(n_items):
-                a = tr[n] * br[n] - ti[n] * bi[n]
-                ti[n] = tr[n] * bi[n] + ti[n] * br[n]
+                a = tr[n] * tr[n] - ti[n] * ti[n]
+                ti[n] = 2.0 * tr[n] * ti[n]
                 tr[n] = a
-        m >>= 1
-        if m > 0:
-            for n in range(n_items):
-                a = br[n] * br[n] - bi[n] * bi[n]
-                bi[n] = 2.0 * br[n] * bi[n]
-                br[n] = a
+            m >>= 1
+    else:
+        _general_power(tr, ti, expo)
     if weighting == WEIGHT_MAGNITUDE:
         for n in range(n_items):
-            tr[n] *= mag[n]
-            ti[n] *= mag[n]
+            tr[n] *= scale[n]
+            ti[n] *= scale[n]
+    return gaps
 
 
 @njit(cache=True, error_model="numpy")
-def _principal_roots(sr, si, power, rr, ri):
-    """Principal M-th root e^{j phi} (phi = arg(S)/M in (-pi/M, pi/M]) of every window sum
-    S = sr + j si, as a unit phasor in rr, ri; (1, 0) where S = 0.
-
-    M = 2^k: k half-angle steps on the unnormalised sum, h <- h + |h| (the bisector of h
-    and the real axis; S on the negative real axis, arg pi, goes to +j), then one
-    normalisation; no trigonometry. Other M: atan2/cos/sin.
-    An S with max(|Re|, |Im|) outside [1e-150, 1e150] is divided in place by that
-    maximum (a positive factor: signs and the signs of cross products, which is all the
-    unwrapping looks at, are unchanged) so that no square or product overflows.
-    """
-    halvings = -1
-    if power & (power - 1) == 0:
-        halvings = 0
-        m = power
-        while m > 1:
+def _general_power(tr, ti, expo):
+    """(tr + j ti) <- (tr + j ti)^expo element-wise, any positive integer ``expo``
+    (the base is kept in a copy; small exponents only, so a per-element loop)."""
+    for n in range(tr.shape[0]):
+        br = tr[n]
+        bi = ti[n]
+        rr = 1.0
+        ri = 0.0
+        m = expo
+        while m > 0:
+            if m & 1:
+                a = rr * br - ri * bi
+                ri = rr * bi + ri * br
+                rr = a
             m >>= 1
-            halvings += 1
-    for n in range(sr.shape[0]):
-        a = sr[n]
-        b = si[n]
-        big = max(abs(a), abs(b))
-        if big == 0.0:
-            rr[n] = 1.0
-            ri[n] = 0.0
-            continue
-        if big > 1e150 or big < 1e-150:
-            a /= big
-            b /= big
-            sr[n] = a
-            si[n] = b
-        if halvings < 0:
-            ang = np.pi if (b == 0.0 and a < 0.0) else np.arctan2(b, a)
-            ang /= power
-            rr[n] = np.cos(ang)
-            ri[n] = np.sin(ang)
-            continue
-        hr = a
-        hi = b
-        for _ in range(halvings):
-            mag = np.sqrt(hr * hr + hi * hi)
-            hr += mag
-            if hr == 0.0 and hi == 0.0:      # exactly on the negative real axis: arg pi -> pi/2
-                hi = mag
-        inv = 1.0 / np.sqrt(hr * hr + hi * hi)
-        rr[n] = hr * inv
-        ri[n] = hi * inv
+            if m > 0:
+                a = br * br - bi * bi
+                bi = 2.0 * br * bi
+                br = a
+        tr[n] = rr
+        ti[n] = ri
+
+
+# --- 2. window sums (serial) ------------------------------------------------------------
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _prefix_run(tr, ti, ring_re, ring_im, sfx_re, sfx_im, pfr, pfi, sr, si):
+    """Part of one block: running prefix sum plus the previous block's suffix sums
+    (all arrays start at the run's first sample: indices from 0, no wraparound)."""
+    for q in range(tr.shape[0]):
+        t_r = tr[q]
+        t_i = ti[q]
+        ring_re[q] = t_r
+        ring_im[q] = t_i
+        pfr += t_r
+        pfi += t_i
+        sr[q] = sfx_re[q] + pfr
+        si[q] = sfx_im[q] + pfi
+    return pfr, pfi
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _suffix_sums(ring_re, ring_im, suffix_re, suffix_im, window):
+    """Reverse cumulative sums of a completed block (suffix[window] stays 0)."""
+    acc_r = 0.0
+    acc_i = 0.0
+    for q in range(window):
+        p = np.uint64(window - 1 - q)
+        acc_r += ring_re[p]
+        acc_i += ring_im[p]
+        suffix_re[p] = acc_r
+        suffix_im[p] = acc_i
 
 
 @njit(cache=True, error_model="numpy")
-def _sliding_sums(tr, ti, resets, state, terms, suffix, window, rot_re, rot_im, sr, si):
-    """S e^{-j M pa} over the window ending at each sample: the previous block's suffix
+def _sliding_sums(tr, ti, resets, state, ring_re, ring_im, suffix_re, suffix_im, window, sr, si):
+    """Sum of t over the window ending at each sample: the previous block's suffix
     sum plus the current block's prefix sum (blocks of ``window`` samples since the
     last reset); the window restarts empty at each reset."""
     n_items = tr.shape[0]
@@ -219,183 +288,350 @@ def _sliding_sums(tr, ti, resets, state, terms, suffix, window, rot_re, rot_im, 
     pfr = state[S_PREFIX_RE]
     pfi = state[S_PREFIX_IM]
     next_reset = 0
-    for n in range(n_items):
-        if next_reset < n_resets and resets[next_reset] == n:
+    n = 0
+    while n < n_items:
+        if next_reset < n_resets and resets[next_reset] <= n:
             for j in range(window + 1):
-                suffix[j] = 0.0
+                suffix_re[j] = 0.0
+                suffix_im[j] = 0.0
             pos = 0
             pfr = 0.0
             pfi = 0.0
             while next_reset < n_resets and resets[next_reset] <= n:
                 next_reset += 1
-        t_r = tr[n]
-        t_i = ti[n]
-        terms[pos] = complex(t_r, t_i)
-        pfr += t_r
-        pfi += t_i
-        sfx = suffix[pos + 1]
-        ur = sfx.real + pfr
-        ui = sfx.imag + pfi
-        sr[n] = ur * rot_re - ui * rot_im
-        si[n] = ur * rot_im + ui * rot_re
-        if pos == window - 1:
-            acc = 0.0 + 0.0j
-            for j in range(window - 1, -1, -1):
-                acc += terms[j]
-                suffix[j] = acc
+        end = min(n_items, n + window - pos)
+        if next_reset < n_resets:
+            end = min(end, resets[next_reset])
+        pfr, pfi = _prefix_run(tr[n:end], ti[n:end], ring_re[pos:], ring_im[pos:],
+                               suffix_re[pos + 1:], suffix_im[pos + 1:], pfr, pfi, sr[n:end], si[n:end])
+        pos += end - n
+        n = end
+        if pos == window:
+            _suffix_sums(ring_re, ring_im, suffix_re, suffix_im, window)
             pos = 0
             pfr = 0.0
             pfi = 0.0
-        else:
-            pos += 1
     state[S_POS] = pos
     state[S_PREFIX_RE] = pfr
     state[S_PREFIX_IM] = pfi
 
 
+# --- 3. rotation, scaling, principal roots, decisions (element-wise) -------------------
+
 @njit(cache=True, error_model="numpy")
-def _unwrap_and_output(x, valid, sr, si, rr, ri, out, ref, freq, phase, resets, state, delay_x,
-                       delay_p, delay_f, history_p, power, window, roots_re, roots_im):
-    """V&V unwrapping of each estimate (``sr``, ``si``: S up to a positive factor, 0 where S = 0),
-    phase assignment to the sample at the window centre (or, at a reset, to the samples
-    still in the delay), outputs."""
-    n_items = x.shape[0]
-    n_resets = resets.shape[0]
-    delay = window // 2
-    total = np.int64(state[S_TOTAL])
-    since = np.int64(state[S_SINCE_RESET])
-    have = state[S_HAVE] != 0.0
-    wpr = state[S_W_RE]
-    wpi = state[S_W_IM]
-    k = np.int64(state[S_K])
-    pr = state[S_P_RE]
-    pi_ = state[S_P_IM]
-    assigned = np.int64(state[S_ASSIGNED])
-    gaps = np.int64(state[S_GAPS])
-    fr = state[S_FREQ]
-    want_ref = ref.shape[0] > 0
-    want_freq = freq.shape[0] > 0
-    want_phase = phase.shape[0] > 0
-    next_reset = 0
-    slot_i = total % window                  # ring slot of input sample i
-    slot_c = (total - delay) % window        # ring slot of sample c = i - delay
-    if slot_c < 0:
-        slot_c += window
+def _rotate(sr, si, rot_re, rot_im, big):
+    """S <- S e^{-jM pa} in place; ``big`` = max(|Re S|, |Im S|)."""
+    for n in range(sr.shape[0]):
+        a = sr[n] * rot_re - si[n] * rot_im
+        b = sr[n] * rot_im + si[n] * rot_re
+        sr[n] = a
+        si[n] = b
+        aa = abs(a)
+        bb = abs(b)
+        big[n] = aa if aa > bb else bb
+
+
+@njit(cache=True, error_model="numpy")
+def _power_of_two_scales(bits):
+    """In place on the int64 view of non-negative float64 values v: 2^-e with e the
+    exponent of v (v 2^-e in [1, 2); clamped to 2^-1022 .. 2^1023), exact to apply."""
+    for n in range(bits.shape[0]):
+        e = 2046 - (bits[n] >> 52)
+        e = 1 if e < 1 else e
+        bits[n] = e << 52
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _first_half(hr, hi):
+    """Direction of e^{j arg(h)/2} (not normalised), float32, no cancellation."""
+    m = np.sqrt(hr * hr + hi * hi)
+    right = hr >= np.float32(0.0)
+    up = hi >= np.float32(0.0)
+    d = m - hr
+    return (hr + m if right else abs(hi)), (hi if right else (d if up else -d))
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _right_half(hr, hi):
+    """Same as _first_half for Re h >= 0."""
+    return hr + np.sqrt(hr * hr + hi * hi), hi
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _store_unit(hr, hi, zero, rr, ri, n):
+    inv = np.float32(1.0) / np.sqrt(hr * hr + hi * hi)
+    rr[n] = np.float32(1.0) if zero else hr * inv
+    ri[n] = np.float32(0.0) if zero else hi * inv
+
+
+@njit(cache=True, error_model="numpy")
+def _principal_roots(sr, si, scale, power, rr, ri):
+    """S <- S scale (exact), then the principal M-th root e^{j phi}, phi = arg(S)/M in
+    (-pi/M, pi/M], as a float32 unit phasor in rr, ri; (1, 0) where S = 0."""
+    n_items = sr.shape[0]
+    halvings = -1
+    if power & (power - 1) == 0:
+        halvings = 0
+        m = power
+        while m > 1:
+            m >>= 1
+            halvings += 1
     for n in range(n_items):
-        i = total + n                        # absolute input index
-        if next_reset < n_resets and resets[next_reset] == n:
-            # samples still in the delay get the last estimate of their own segment
-            for c in range(max(i - delay, assigned), i):
-                delay_p[c % window] = complex(pr, pi_)
-                delay_f[c % window] = fr
-            assigned = max(assigned, i)
-            since = 0
+        a = sr[n] * scale[n]
+        b = si[n] * scale[n]
+        sr[n] = a
+        si[n] = b
+    # one loop per number of half-angle steps, so that each is a plain vectorisable loop
+    if halvings == 0:
+        for n in range(n_items):
+            hr = np.float32(sr[n])
+            hi = np.float32(si[n])
+            _store_unit(hr, hi, (hr == 0) & (hi == 0), rr, ri, n)
+    elif halvings == 1:
+        for n in range(n_items):
+            hr, hi = _first_half(np.float32(sr[n]), np.float32(si[n]))
+            _store_unit(hr, hi, (sr[n] == 0.0) & (si[n] == 0.0), rr, ri, n)
+    elif halvings == 2:
+        for n in range(n_items):
+            hr, hi = _first_half(np.float32(sr[n]), np.float32(si[n]))
+            hr, hi = _right_half(hr, hi)
+            _store_unit(hr, hi, (sr[n] == 0.0) & (si[n] == 0.0), rr, ri, n)
+    elif halvings == 3:
+        for n in range(n_items):
+            hr, hi = _first_half(np.float32(sr[n]), np.float32(si[n]))
+            hr, hi = _right_half(hr, hi)
+            hr, hi = _right_half(hr, hi)
+            _store_unit(hr, hi, (sr[n] == 0.0) & (si[n] == 0.0), rr, ri, n)
+    elif halvings == 4:
+        for n in range(n_items):
+            hr, hi = _first_half(np.float32(sr[n]), np.float32(si[n]))
+            hr, hi = _right_half(hr, hi)
+            hr, hi = _right_half(hr, hi)
+            hr, hi = _right_half(hr, hi)
+            _store_unit(hr, hi, (sr[n] == 0.0) & (si[n] == 0.0), rr, ri, n)
+    else:
+        for n in range(n_items):
+            a = sr[n]
+            b = si[n]
+            if a == 0.0 and b == 0.0:
+                rr[n] = 1.0
+                ri[n] = 0.0
+                continue
+            ang = np.pi if (b == 0.0 and a < 0.0) else np.arctan2(b, a)
+            ang /= power
+            rr[n] = np.cos(ang)
+            ri[n] = np.sin(ang)
+
+
+@njit(cache=True, inline="always")
+def _decision(pr, pi_, sr, si):
+    """Unwrapping increment (-1, 0, +1) from the previous nonzero S (pr, pi_) to S."""
+    cross = si * pr - sr * pi_
+    up = (pi_ >= 0.0) & (si < 0.0) & (cross > 0.0)
+    down = (pi_ < 0.0) & (si >= 0.0) & (cross <= 0.0)
+    return 1 if up else (-1 if down else 0)
+
+
+@njit(cache=True, error_model="numpy")
+def _decisions(sr, si, w_re, w_im, code):
+    """Decision code of every sample: the increment against the previous S (``w``
+    for the first), or ZERO_SUM where S = 0. Returns the number of zero sums."""
+    n_items = sr.shape[0]
+    zeros = 0
+    if n_items == 0:
+        return 0
+    z = (sr[0] == 0.0) & (si[0] == 0.0)
+    code[0] = ZERO_SUM if z else _decision(w_re, w_im, sr[0], si[0])
+    zeros += 1 if z else 0
+    for n in range(1, n_items):
+        z = (sr[n] == 0.0) & (si[n] == 0.0)
+        d = _decision(sr[n - 1], si[n - 1], sr[n], si[n])
+        code[n] = ZERO_SUM if z else d
+        zeros += 1 if z else 0
+    return zeros
+
+
+# --- 4. unwrapping index (serial) --------------------------------------------------------
+
+@njit(cache=True, error_model="numpy")
+def _unwrap_index(code, sr, si, resets, zeros, state, power, kk):
+    """k of every sample (the sum of the increments mod M; 0 at the first nonzero S of
+    a segment; held where S = 0) into ``kk``; updates k, have, w in ``state``."""
+    n_items = code.shape[0]
+    n_resets = resets.shape[0]
+    k = np.int64(state[S_K])
+    have = state[S_HAVE] != 0.0
+    wr = state[S_W_RE]
+    wi = state[S_W_IM]
+    last_nz = -1
+    next_reset = 0
+    n = 0
+    while n < n_items:
+        if next_reset < n_resets and resets[next_reset] <= n:
             have = False
-            fr = 0.0
             while next_reset < n_resets and resets[next_reset] <= n:
                 next_reset += 1
-        if valid[n]:
-            delay_x[slot_i] = complex(np.float64(x[n].real), np.float64(x[n].imag))
+        end = n_items if next_reset >= n_resets else resets[next_reset]
+        if zeros == 0 and have:
+            for j in range(n, end):            # the common case: a plain running sum mod M
+                k += code[j]
+                k = k + power if k < 0 else k
+                k = k - power if k >= power else k
+                kk[j] = k
+            if end > n:
+                last_nz = end - 1
         else:
-            delay_x[slot_i] = 0.0
-            gaps += 1
-        s_r = sr[n]
-        s_i = si[n]
-        if s_r != 0.0 or s_i != 0.0:
-            if have:
-                # V&V rule theta_i = theta_{i-1} + wrap(phi_i - theta_{i-1}) as a test on
-                # the half-planes of S_{i-1}, S_i and the sign of their cross product
-                cross = s_i * wpr - s_r * wpi
-                if wpi >= 0.0 and s_i < 0.0 and cross > 0.0:
-                    k += 1
-                    if k == power:
+            prev_zero = False
+            for j in range(n, end):
+                c = np.int64(code[j])
+                if c == ZERO_SUM:
+                    prev_zero = True
+                else:
+                    if not have:
                         k = 0
-                elif wpi < 0.0 and s_i >= 0.0 and cross <= 0.0:
-                    k -= 1
-                    if k < 0:
-                        k += power
-            else:
-                k = 0
-                have = True
-            wpr = s_r
-            wpi = s_i
-            qr = roots_re[k]
-            qi = roots_im[k]
-            pr = rr[n] * qr - ri[n] * qi
-            pi_ = rr[n] * qi + ri[n] * qr
-        if want_freq:
-            # phase advance over the last min(since, W) estimates
-            lag = window if since >= window else since
-            if lag > 0:
-                h = history_p[(i - lag) % window]
-                dr = pr * h.real + pi_ * h.imag
-                di = pi_ * h.real - pr * h.imag
-                fr = np.arctan2(di, dr) / lag
-            else:
-                fr = 0.0
-            history_p[slot_i] = complex(pr, pi_)
-        c = i - delay
-        if c >= assigned:
-            delay_p[slot_c] = complex(pr, pi_)
-            delay_f[slot_c] = fr
-            assigned = c + 1
-        if c >= 0:
-            pc = delay_p[slot_c]
-            xc = delay_x[slot_c]
-            out[n] = complex(xc.real * pc.real + xc.imag * pc.imag,
-                             xc.imag * pc.real - xc.real * pc.imag)
-            if want_ref:
-                ref[n] = pc
-            if want_freq:
-                freq[n] = delay_f[slot_c]
-            if want_phase:
-                phase[n] = np.arctan2(pc.imag, pc.real)
-        else:
-            out[n] = 0.0
-            if want_ref:
-                ref[n] = 1.0
-            if want_freq:
-                freq[n] = 0.0
-            if want_phase:
-                phase[n] = 0.0
-        since += 1
-        slot_i += 1
-        if slot_i == window:
-            slot_i = 0
-        slot_c += 1
-        if slot_c == window:
-            slot_c = 0
-
-    state[S_TOTAL] = total + n_items
-    state[S_SINCE_RESET] = min(since, SATURATE)
-    state[S_HAVE] = 1.0 if have else 0.0
-    state[S_W_RE] = wpr
-    state[S_W_IM] = wpi
+                        have = True
+                    else:
+                        if prev_zero:              # decide against the last nonzero S
+                            if last_nz >= 0:
+                                c = _decision(sr[last_nz], si[last_nz], sr[j], si[j])
+                            else:
+                                c = _decision(wr, wi, sr[j], si[j])
+                        k += c
+                        k = k + power if k < 0 else k
+                        k = k - power if k >= power else k
+                    prev_zero = False
+                    last_nz = j
+                kk[j] = k
+        n = end
+    if last_nz >= 0:
+        wr = sr[last_nz]
+        wi = si[last_nz]
     state[S_K] = k
-    state[S_P_RE] = pr
-    state[S_P_IM] = pi_
-    state[S_ASSIGNED] = assigned
-    state[S_GAPS] = gaps
-    state[S_FREQ] = fr
+    state[S_HAVE] = 1.0 if have else 0.0
+    state[S_W_RE] = wr
+    state[S_W_IM] = wi
 
+
+# --- 5. phasors and outputs (element-wise, holds and resets patched serially) ------------
+
+@njit(cache=True, error_model="numpy")
+def _phasors(rr, ri, kk, roots_re, roots_im, pr, pi_):
+    """e^{j theta} = principal root times e^{j 2 pi k / M}, float32."""
+    for n in range(rr.shape[0]):
+        k = kk[n]
+        qr = roots_re[k]
+        qi = roots_im[k]
+        a = np.float64(rr[n])
+        b = np.float64(ri[n])
+        pr[n] = np.float32(a * qr - b * qi)
+        pi_[n] = np.float32(a * qi + b * qr)
+
+
+@njit(cache=True, error_model="numpy")
+def _hold(code, pr, pi_, p0r, p0i):
+    """Where S = 0 the phasor of the previous sample (``p0`` before the first)."""
+    hr = np.float32(p0r)
+    hi = np.float32(p0i)
+    for n in range(code.shape[0]):
+        if code[n] == ZERO_SUM:
+            pr[n] = hr
+            pi_[n] = hi
+        else:
+            hr = pr[n]
+            hi = pi_[n]
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _derotate(xr, xi, cr, ci):
+    """x e^{-j theta} for a valid x (finite, not 0), else 0; float32."""
+    ok = (abs(xr) < np.inf) & (abs(xi) < np.inf) & ((xr != 0) | (xi != 0))
+    yr = xr * cr + xi * ci
+    yi = xi * cr - xr * ci
+    zero = np.float32(0.0)
+    return (yr if ok else zero), (yi if ok else zero)
+
+
+@njit(cache=True, error_model="numpy")
+def _correct(xf, x_off, pr, pi_, of, n0, n1):
+    """Output n (n0 <= n < n1) = input x_f[n + x_off] e^{-j theta_n}, float32 views."""
+    for n in range(n0, n1):
+        yr, yi = _derotate(xf[2 * (n + x_off)], xf[2 * (n + x_off) + 1], pr[n], pi_[n])
+        of[2 * n] = yr
+        of[2 * n + 1] = yi
+
+@njit(cache=True, error_model="numpy")
+def _held_outputs(xf, dxf, a, m, i0, n_c0, lres, last, delay, window, p0r, p0i, pr, pi_,
+                  fr_at_reset, delay_p, delay_f, of, ref, freq, phase, want_ref, want_freq,
+                  want_phase):
+    """Resets of the piece (call offset ``a``) in order: the samples still in the delay
+    get the phasor and frequency of the sample before the reset (delay_p, delay_f), then
+    every output n whose sample c = i - D precedes the latest reset at or before i is
+    recomputed with them. Returns the latest reset (absolute index)."""
+    j = 0
+    n = 0
+    while n < m:
+        if j < lres.shape[0] and lres[j] <= n:
+            i = i0 + n
+            if i > last:
+                hr = p0r if n == 0 else np.float64(pr[n - 1])
+                hi = p0i if n == 0 else np.float64(pi_[n - 1])
+                for c in range(max(i - delay, last, 0), i):
+                    delay_p[c % window] = complex(hr, hi)
+                    if want_freq:
+                        delay_f[c % window] = fr_at_reset[j]
+                last = i
+            while j < lres.shape[0] and lres[j] <= n:
+                j += 1
+        seg_end = m if j >= lres.shape[0] else lres[j]
+        lo = max(n, n_c0)
+        hi_ = min(seg_end, last + delay - i0)
+        for h in range(lo, hi_):
+            c = i0 + h - delay
+            p = delay_p[c % window]
+            cr = np.float32(p.real)
+            ci = np.float32(p.imag)
+            k = a + h - delay                  # index of sample c in this call's x
+            if k >= 0:
+                yr, yi = _derotate(xf[2 * k], xf[2 * k + 1], cr, ci)
+            else:
+                yr, yi = _derotate(dxf[2 * (a + h)], dxf[2 * (a + h) + 1], cr, ci)
+            of[2 * (a + h)] = yr
+            of[2 * (a + h) + 1] = yi
+            if want_ref:
+                ref[a + h] = complex(cr, ci)
+            if want_phase:
+                phase[a + h] = np.arctan2(np.float64(ci), np.float64(cr))
+            if want_freq:
+                freq[a + h] = delay_f[c % window]
+        n = seg_end
+    return last
+
+
+# --- the kernel --------------------------------------------------------------------------
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def feedforward(x, out, ref, freq, phase, resets, state, terms, suffix, delay_x, delay_p,
-                delay_f, history_p, power, window, weighting, rot_re, rot_im, roots_re, roots_im):
-    """Run the estimator over ``x`` (complex64), writing corrected samples to ``out``.
+def feedforward(x, out, ref, freq, phase, resets, state, ring_re, ring_im, suffix_re, suffix_im,
+                delay_x, delay_p, delay_f, hist_re, hist_im, scratch, scratch32, codes,
+                power, window, weighting, rot_re, rot_im, roots_re, roots_im):
+    """Run the estimator over ``x`` (complex64, contiguous), writing corrected samples to
+    ``out`` (complex64).
 
     ``ref`` (complex64), ``freq`` (float32, rad/sample), ``phase`` (float32, rad in
     (-pi, pi]) are the diagnostic outputs; pass zero-length arrays to skip them.
     ``resets``: increasing indices into ``x`` of samples that start a new segment.
     ``rot`` = e^{-j M point_angle}; ``roots`` = e^{j 2 pi k / M}, k = 0..M-1.
+    The arrays between ``state`` and ``power`` are those of FeedforwardBuffers.arrays().
     Returns the number of samples processed.
     """
     n_items = x.shape[0]
-    size = min(n_items, PIECE)
-    scratch = np.empty((9, size))
-    tr, ti, sr, si, rr, ri, br, bi, mag = (scratch[0], scratch[1], scratch[2], scratch[3], scratch[4],
-                                           scratch[5], scratch[6], scratch[7], scratch[8])
-    valid = np.empty(size, np.bool_)
+    delay = window // 2
+    want_ref = ref.shape[0] > 0
+    want_freq = freq.shape[0] > 0
+    want_phase = phase.shape[0] > 0
+    xf = x.view(np.float32)
+    of = out.view(np.float32)
+    dxf = delay_x.view(np.float32)
+    reff = ref.view(np.float32)
     first_reset = 0
     for a in range(0, n_items, PIECE):
         b = min(a + PIECE, n_items)
@@ -403,18 +639,109 @@ def feedforward(x, out, ref, freq, phase, resets, state, terms, suffix, delay_x,
         last_reset = first_reset
         while last_reset < resets.shape[0] and resets[last_reset] < b:
             last_reset += 1
-        local_resets = resets[first_reset:last_reset] - a
+        lres = resets[first_reset:last_reset] - a
         first_reset = last_reset
-        xs = x[a:b]
-        # 1. terms (element-wise)
-        _mth_power_terms(xs, power, weighting, tr[:m], ti[:m], valid[:m], br[:m], bi[:m], mag[:m])
-        # 2. sliding sums (serial)
-        _sliding_sums(tr[:m], ti[:m], local_resets, state, terms, suffix, window, rot_re, rot_im,
-                      sr[:m], si[:m])
-        # 3. principal roots (element-wise)
-        _principal_roots(sr[:m], si[:m], power, rr[:m], ri[:m])
-        # 4. unwrapping, delay line and outputs (serial)
-        _unwrap_and_output(xs, valid[:m], sr[:m], si[:m], rr[:m], ri[:m], out[a:b], ref[a:b],
-                           freq[a:b], phase[a:b], local_resets, state, delay_x, delay_p, delay_f,
-                           history_p, power, window, roots_re, roots_im)
+        tr = scratch[0, :m]
+        ti = scratch[1, :m]
+        sr = scratch[2, :m]
+        si = scratch[3, :m]
+        sc = scratch[4, :m]
+        rr = scratch32[0, :m]
+        ri = scratch32[1, :m]
+        pr = scratch32[2, :m]
+        pi_ = scratch32[3, :m]
+        code = codes[0, :m]
+        kk = codes[1, :m]
+        i0 = np.int64(state[S_TOTAL])       # absolute index of the piece's first sample
+        p0r = state[S_P_RE]
+        p0i = state[S_P_IM]
+        # 1. terms
+        gaps = _mth_power_terms(xf[2 * a:2 * b], power, weighting, tr, ti, sc)
+        # 2. window sums (serial)
+        _sliding_sums(tr, ti, lres, state, ring_re, ring_im, suffix_re, suffix_im, window, sr, si)
+        # 3. rotation, exact scaling, principal roots, decisions
+        _rotate(sr, si, rot_re, rot_im, sc)
+        _power_of_two_scales(sc.view(np.int64))
+        _principal_roots(sr, si, sc, power, rr, ri)
+        zeros = _decisions(sr, si, state[S_W_RE], state[S_W_IM], code)
+        # 4. unwrapping index (serial)
+        _unwrap_index(code, sr, si, lres, zeros, state, power, kk)
+        # 5. phasors
+        _phasors(rr, ri, kk, roots_re, roots_im, pr, pi_)
+        if zeros > 0:
+            _hold(code, pr, pi_, p0r, p0i)
+        # outputs: n < n_c0 have no input sample yet (c < 0); n < n_x take it from delay_x
+        n_c0 = min(max(delay - i0, 0), m)
+        n_x = min(max(delay - a, n_c0), m)
+        opf = of[2 * a:2 * b]
+        for n in range(2 * n_c0):
+            opf[n] = 0.0
+        _correct(dxf, a, pr, pi_, opf, n_c0, n_x)
+        _correct(xf, a - delay, pr, pi_, opf, n_x, m)
+        if want_ref:
+            for n in range(n_c0):
+                ref[a + n] = 1.0
+            for n in range(n_c0, m):
+                reff[2 * (a + n)] = pr[n]
+                reff[2 * (a + n) + 1] = pi_[n]
+        if want_phase:
+            for n in range(n_c0):
+                phase[a + n] = 0.0
+            for n in range(n_c0, m):
+                phase[a + n] = np.arctan2(np.float64(pi_[n]), np.float64(pr[n]))
+        # frequency diagnostic (serial): phase advance over the last min(since, W) estimates
+        since = np.int64(state[S_SINCE_RESET])
+        fr = state[S_FREQ]
+        fr_at_reset = sc                    # (scratch) fr before each reset of the piece
+        if want_freq:
+            j = 0
+            for n in range(m):
+                i = i0 + n
+                if j < lres.shape[0] and lres[j] <= n:
+                    fr_at_reset[j] = fr               # for the samples still in the delay
+                    while j < lres.shape[0] and lres[j] <= n:
+                        j += 1
+                    since = 0
+                    fr = 0.0
+                lag = window if since >= window else since
+                cr = np.float64(pr[n])
+                ci = np.float64(pi_[n])
+                if lag > 0:
+                    slot = (i - lag) % window
+                    hr = hist_re[slot]
+                    hi = hist_im[slot]
+                    fr = np.arctan2(ci * hr - cr * hi, cr * hr + ci * hi) / lag
+                else:
+                    fr = 0.0
+                hist_re[i % window] = cr
+                hist_im[i % window] = ci
+                freq[a + n] = fr if n >= n_c0 else 0.0
+                since += 1
+        elif lres.shape[0] > 0:
+            since = m - lres[lres.shape[0] - 1]
+            fr = 0.0
+        else:
+            since += m
+        # resets: the samples still in the delay get the last estimate of their own segment
+        last = _held_outputs(xf, dxf, a, m, i0, n_c0, lres, np.int64(state[S_LAST_RESET]), delay,
+                             window, p0r, p0i, pr, pi_, fr_at_reset, delay_p, delay_f, of, ref, freq,
+                             phase, want_ref, want_freq, want_phase)
+        state[S_LAST_RESET] = last
+        state[S_SINCE_RESET] = min(since, SATURATE)
+        state[S_FREQ] = fr
+        state[S_GAPS] += gaps
+        state[S_TOTAL] = i0 + m
+        if m > 0:
+            state[S_P_RE] = pr[m - 1]
+            state[S_P_IM] = pi_[m - 1]
+    # the last ``delay`` input samples for the next call
+    if delay > 0:
+        if n_items >= delay:
+            for j in range(delay):
+                delay_x[j] = x[n_items - delay + j]
+        else:
+            for j in range(delay - n_items):
+                delay_x[j] = delay_x[j + n_items]
+            for j in range(n_items):
+                delay_x[delay - n_items + j] = x[j]
     return n_items

@@ -472,8 +472,16 @@ def _unwrap_index(code, sr, si, resets, zeros, state, power, kk):
             while next_reset < n_resets and resets[next_reset] <= n:
                 next_reset += 1
         end = n_items if next_reset >= n_resets else resets[next_reset]
-        if zeros == 0 and have:
-            for j in range(n, end):            # the common case: a plain running sum mod M
+        if zeros == 0 and have and power & (power - 1) == 0:
+            mask = power - 1                   # the common case: a plain running sum mod 2^j
+            for j in range(n, end):
+                k += code[j]
+                kk[j] = k & mask
+            k &= mask
+            if end > n:
+                last_nz = end - 1
+        elif zeros == 0 and have:
+            for j in range(n, end):            # a plain running sum mod M
                 k += code[j]
                 k = k + power if k < 0 else k
                 k = k - power if k >= power else k
@@ -515,16 +523,44 @@ def _unwrap_index(code, sr, si, resets, zeros, state, power, kk):
 # --- 5. phasors and outputs (element-wise, holds and resets patched serially) ------------
 
 @njit(cache=True, error_model="numpy")
-def _phasors(rr, ri, kk, roots_re, roots_im, pr, pi_):
-    """e^{j theta} = principal root times e^{j 2 pi k / M}, float32."""
-    for n in range(rr.shape[0]):
-        k = kk[n]
-        qr = roots_re[k]
-        qi = roots_im[k]
-        a = np.float64(rr[n])
-        b = np.float64(ri[n])
-        pr[n] = np.float32(a * qr - b * qi)
-        pi_[n] = np.float32(a * qi + b * qr)
+def _phasors(rr, ri, kk, power, roots_re, roots_im, pr, pi_):
+    """e^{j theta} = principal root times e^{j 2 pi k / M}, float32. M = 2^j: by selects
+    (quarter turns, and turns of 2 pi / M and 4 pi / M for M = 8, 16), so that the loop
+    vectorises; other M: from the table ``roots``."""
+    n_items = rr.shape[0]
+    if power & (power - 1) != 0:
+        for n in range(n_items):
+            k = np.uint64(kk[n])
+            qr = roots_re[k]
+            qi = roots_im[k]
+            a = np.float64(rr[n])
+            b = np.float64(ri[n])
+            pr[n] = np.float32(a * qr - b * qi)
+            pi_[n] = np.float32(a * qi + b * qr)
+        return
+    # k = quarter * (M / 4) + fine for M >= 4
+    qshl = 1 if power == 2 else 0
+    qshr = 2 if power == 16 else (1 if power == 8 else 0)
+    fmask = (1 << qshr) - 1
+    c1 = np.float32(np.cos(2.0 * np.pi / power))
+    s1 = np.float32(np.sin(2.0 * np.pi / power))
+    c2 = np.float32(np.cos(4.0 * np.pi / power))
+    s2 = np.float32(np.sin(4.0 * np.pi / power))
+    for n in range(n_items):
+        k = np.int32(kk[n])
+        quarter = ((k << qshl) >> qshr) & 3
+        fine = k & fmask
+        a = rr[n]
+        b = ri[n]
+        f0 = (fine & 1) != 0
+        a, b = (a * c1 - b * s1 if f0 else a), (a * s1 + b * c1 if f0 else b)
+        f1 = (fine & 2) != 0
+        a, b = (a * c2 - b * s2 if f1 else a), (a * s2 + b * c2 if f1 else b)
+        q1 = (quarter & 1) != 0
+        a, b = (-b if q1 else a), (a if q1 else b)
+        q2 = (quarter & 2) != 0
+        pr[n] = -a if q2 else a
+        pi_[n] = -b if q2 else b
 
 
 @njit(cache=True, error_model="numpy")
@@ -552,12 +588,14 @@ def _derotate(xr, xi, cr, ci):
 
 
 @njit(cache=True, error_model="numpy")
-def _correct(xf, x_off, pr, pi_, of, n0, n1):
-    """Output n (n0 <= n < n1) = input x_f[n + x_off] e^{-j theta_n}, float32 views."""
-    for n in range(n0, n1):
-        yr, yi = _derotate(xf[2 * (n + x_off)], xf[2 * (n + x_off) + 1], pr[n], pi_[n])
+def _correct(xf, pr, pi_, of):
+    """of = xf e^{-j theta} element-wise (float32 views, I at 2n, Q at 2n + 1; all
+    arrays start at the first sample, so no index can be negative)."""
+    for n in range(pr.shape[0]):
+        yr, yi = _derotate(xf[2 * n], xf[2 * n + 1], pr[n], pi_[n])
         of[2 * n] = yr
         of[2 * n + 1] = yi
+
 
 @njit(cache=True, error_model="numpy")
 def _held_outputs(xf, dxf, a, m, i0, n_c0, lres, last, delay, window, p0r, p0i, pr, pi_,
@@ -667,7 +705,7 @@ def feedforward(x, out, ref, freq, phase, resets, state, ring_re, ring_im, suffi
         # 4. unwrapping index (serial)
         _unwrap_index(code, sr, si, lres, zeros, state, power, kk)
         # 5. phasors
-        _phasors(rr, ri, kk, roots_re, roots_im, pr, pi_)
+        _phasors(rr, ri, kk, power, roots_re, roots_im, pr, pi_)
         if zeros > 0:
             _hold(code, pr, pi_, p0r, p0i)
         # outputs: n < n_c0 have no input sample yet (c < 0); n < n_x take it from delay_x
@@ -676,8 +714,8 @@ def feedforward(x, out, ref, freq, phase, resets, state, ring_re, ring_im, suffi
         opf = of[2 * a:2 * b]
         for n in range(2 * n_c0):
             opf[n] = 0.0
-        _correct(dxf, a, pr, pi_, opf, n_c0, n_x)
-        _correct(xf, a - delay, pr, pi_, opf, n_x, m)
+        _correct(dxf[2 * (a + n_c0):2 * (a + n_x)], pr[n_c0:n_x], pi_[n_c0:n_x], opf[2 * n_c0:2 * n_x])
+        _correct(xf[2 * (a + n_x - delay):2 * (b - delay)], pr[n_x:], pi_[n_x:], opf[2 * n_x:])
         if want_ref:
             for n in range(n_c0):
                 ref[a + n] = 1.0

@@ -656,7 +656,8 @@ def feedforward(x, out, ref, freq, phase, resets, state, ring_re, ring_im, suffi
 
     ``ref`` (complex64), ``freq`` (float32, rad/sample), ``phase`` (float32, rad in
     (-pi, pi]) are the diagnostic outputs; pass zero-length arrays to skip them.
-    ``resets``: increasing indices into ``x`` of samples that start a new segment.
+    ``resets``: increasing indices into ``x`` of samples that start a new segment
+    (overwritten: made relative to each piece of PIECE samples).
     ``rot`` = e^{-j M point_angle}; ``roots`` = e^{j 2 pi k / M}, k = 0..M-1.
     The arrays between ``state`` and ``power`` are those of FeedforwardBuffers.arrays().
     Returns the number of samples processed.
@@ -677,7 +678,9 @@ def feedforward(x, out, ref, freq, phase, resets, state, ring_re, ring_im, suffi
         last_reset = first_reset
         while last_reset < resets.shape[0] and resets[last_reset] < b:
             last_reset += 1
-        lres = resets[first_reset:last_reset] - a
+        for r in range(first_reset, last_reset):   # piece-relative, in place: no allocation
+            resets[r] -= a
+        lres = resets[first_reset:last_reset]
         first_reset = last_reset
         tr = scratch[0, :m]
         ti = scratch[1, :m]

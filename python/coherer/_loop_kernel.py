@@ -88,7 +88,7 @@ the stream is chunked.
 import numpy as np
 from numba import njit
 
-from ._numeric import half_power, int_power
+from ._numeric import half_power, pair_power
 
 # state[] layout -------------------------------------------------------------------
 S_PHASE = 0      # theta^, rad, wrapped to [-pi, pi)
@@ -382,7 +382,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                 norm_left = NORM_BLOCK
             # detector d = (y_lim/sqrt(M2))^M e^{-j M point_angle} = z conj(P^M)
             g = scale * inv_rms
-            z = int_power(complex(xr * g, xi * g), power) * rot
+            z = complex(*pair_power(xr * g, xi * g, power)) * rot
             d = complex(z.real * pm_re + z.imag * pm_im, z.imag * pm_re - z.real * pm_im)
             e = d.imag * inv_norm                # / (S/M2)^(M/2): mean sin(M phi)
             if mw < start_mw:

@@ -53,7 +53,7 @@ import numpy as np
 from numba import njit, vectorize
 from scipy import special, stats
 
-from ._numeric import int_power
+from ._numeric import unit_pair_power
 
 #: Per-window false-lock probability the default lock threshold is set for.
 DEFAULT_LOCK_P_FA = 1e-6
@@ -172,19 +172,6 @@ def esn0_db(esn0):
 
 # --- numba kernels ----------------------------------------------------------------
 
-@njit(cache=True, inline="always")
-def _projection(zr, zi, p, power, rot):
-    """``Re((z/|z|)^M rot)`` for a sample with power ``p = |z|^2 > 0`` (finite).
-    Even M squares first (one reciprocal, no square root): ``(z/|z|)^2 = z^2 / p``."""
-    if power % 2 == 0:
-        inv = 1.0 / p
-        u = int_power(complex((zr * zr - zi * zi) * inv, 2.0 * zr * zi * inv), power // 2)
-    else:
-        r = 1.0 / np.sqrt(p)
-        u = int_power(complex(zr * r, zi * r), power)
-    return u.real * rot.real - u.imag * rot.imag
-
-
 @njit(nogil=True, cache=True)
 def unit_projection(z, power, rot):
     """``Re((z/|z|)^M rot)`` for one sample (``rot = e^{-j M point_angle}``);
@@ -194,50 +181,8 @@ def unit_projection(z, power, rot):
     p = zr * zr + zi * zi
     if not (p > 0.0 and p < np.inf):
         return 0.0, False
-    return _projection(zr, zi, p, power, rot), True
-
-
-#: numba flags of the window sums: reassociation lets the sums use SIMD lanes. The
-#: grouping then depends only on a sample's position in its window, never on where a
-#: call starts, so a window's sums are the same whatever the stream's chunking.
-#: No ``nnan``/``ninf``: the gap test must see NaN and Inf. Inlined functions are
-#: compiled with their caller's flags, so ``window_sums`` carries them too.
-_SIMD_MATH = {"reassoc", "contract", "nsz", "arcp"}
-
-
-@njit(cache=True, inline="always")
-def _pair_power(ur, ui, m):
-    """(ur + j ui)**m on a real pair by repeated squaring (m a positive integer)."""
-    rr = 1.0
-    ri = 0.0
-    while m > 0:
-        if m & 1:
-            rr, ri = rr * ur - ri * ui, rr * ui + ri * ur
-        ur, ui = ur * ur - ui * ui, 2.0 * ur * ui
-        m >>= 1
-    return rr, ri
-
-
-@njit(cache=True, inline="always", error_model="numpy")
-def _unit_pair_power(zr, zi, p, power):
-    """(z/|z|)**M for ``z = zr + j zi`` with ``p = |z|^2 > 0``, as a real pair.
-    M = 2, 4, 8, 16 square z^2/|z|^2 (no square root), written out so that the
-    code has no loop left once M is a constant; other M use repeated squaring."""
-    if power == 2 or power == 4 or power == 8 or power == 16:
-        inv = 1.0 / p
-        ur = (zr * zr - zi * zi) * inv
-        ui = 2.0 * zr * zi * inv
-        if power >= 4:
-            ur, ui = ur * ur - ui * ui, 2.0 * ur * ui
-        if power >= 8:
-            ur, ui = ur * ur - ui * ui, 2.0 * ur * ui
-        if power == 16:
-            ur, ui = ur * ur - ui * ui, 2.0 * ur * ui
-        return ur, ui
-    inv = 1.0 / np.sqrt(p)
-    if power == 1:
-        return zr * inv, zi * inv
-    return _pair_power(zr * inv, zi * inv, power)
+    ur, ui = unit_pair_power(zr, zi, p, power)
+    return ur * rot.real - ui * rot.imag, True
 
 
 #: numba flags of the window sums: reassociation lets the sums use SIMD lanes. The
@@ -264,7 +209,7 @@ def _one_window(xs, power, rot_re, rot_im):
         zr = zr if ok else 0.0
         zi = zi if ok else 0.0
         p = p if ok else 0.0
-        ur, ui = _unit_pair_power(zr, zi, p if ok else 1.0, power)
+        ur, ui = unit_pair_power(zr, zi, p if ok else 1.0, power)
         s_proj += ur * rot_re - ui * rot_im
         s_m2 += p
         s_m4 += p * p

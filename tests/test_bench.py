@@ -48,14 +48,16 @@ def test_quick_json_has_every_figure():
     assert result["framework_floor"]["wall"]["median"] > 0
     assert result["two_chains"]["ratio"] > 0
     assert result["latency"]["construction_s"] > 0 and result["latency"]["first_output_s"] > 0
-    assert {c["check"] for c in result["acceptance"]} >= {"squaring loop in flowgraph / C loop",
-                                                          "two chains / one chain"}
+    assert {c["check"] for c in result["acceptance"]} >= {
+        "squaring loop in flowgraph / C loop", "M=4 / M=2 in flowgraph", "M=8 / M=2 in flowgraph",
+        "lock detector in flowgraph / C loop", "feed-forward in flowgraph / C loop",
+        "two chains / one chain"}
 
 
 def test_table_is_printed_without_json():
     proc = clirunner.coherer("bench", "--quick", timeout=300)
     assert proc.returncode == 0, proc.stderr
-    assert "squaring loop (M=2)" in proc.stdout and "acceptance (issue 7)" in proc.stdout
+    assert "squaring loop (M=2)" in proc.stdout and "acceptance (issues 7 and 8)" in proc.stdout
 
 
 def test_bad_soak_length_is_one_error_line():

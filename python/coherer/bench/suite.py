@@ -41,6 +41,8 @@ GOAL_LOOP_VS_C = 1.5
 TARGET_HIGH_M_VS_M2 = 0.75
 TARGET_DETECTOR_VS_C = 3.0
 TARGET_TWO_CHAINS = 1.7
+#: Acceptance target of issue 8 (feed-forward block in a flowgraph / C loop).
+TARGET_FEEDFORWARD_VS_C = 3.0
 
 
 # --- what is benchmarked ---------------------------------------------------------------
@@ -212,7 +214,7 @@ def run(quick=False, soak=False, soak_samples=SOAK_SAMPLES, progress=None):
 
 
 def acceptance(result):
-    """Issue 7 acceptance checks that this run can evaluate: list of dicts, with the
+    """Issue 7 and 8 acceptance checks that this run can evaluate: list of dicts, with the
     value per clock (``{"wall": x, "cpu": y}``; two chains: wall clock only)."""
     rows = {r["block"]: r for r in result["blocks"]}
     checks = []
@@ -233,6 +235,9 @@ def acceptance(result):
     det = rows.get("lock detector (M=2)")
     if det:
         add("lock detector in flowgraph / C loop", det["flowgraph_vs_c"], TARGET_DETECTOR_VS_C)
+    ff = rows.get(f"feed-forward M=4 (window {FEEDFORWARD_WINDOW})")
+    if ff:
+        add("feed-forward in flowgraph / C loop", ff["flowgraph_vs_c"], TARGET_FEEDFORWARD_VS_C)
     if "two_chains" in result:
         add("two chains / one chain", {"wall": result["two_chains"]["ratio"]}, TARGET_TWO_CHAINS)
     if "soak" in result:
@@ -308,7 +313,7 @@ def format_table(result):
         lines.append(f"soak: {s['samples']:.3g} samples at {s['msps']:.1f} Msps, RSS "
                      f"{s['rss_warm_mb']:.1f} MB after warm-up, peak {s['rss_peak_mb']:.1f} MB, "
                      f"growth {s['growth_mb']:.2f} MB (limit {s['limit_mb']:g} MB)")
-    lines += ["", "acceptance (issue 7), wall-clock / CPU-time values:"]
+    lines += ["", "acceptance (issues 7 and 8), wall-clock / CPU-time values:"]
     for c in result["acceptance"]:
         vals = " / ".join("-" if c["value"].get(k) is None else f"{c['value'][k]:.2f}"
                           for k in CLOCKS if k in c["value"])

@@ -40,8 +40,11 @@ Implementation notes
       sample cannot leave a residue behind once it is out of the window, and
       rounding cannot drift.
     * Each S is rotated by e^{-jM pa} and scaled by a power of two (exact)
-      so that its larger component lies in [1, 4): signs and the unwrapping
+      so that its larger component lies in [1, 2): signs and the unwrapping
       decision are unchanged and the principal root can be taken in float32.
+      The root and the unwrapping decision of each sample come out of one
+      element-wise pass (roots stored with re and im interleaved, so that the
+      loop writes few arrays and vectorises).
     * Principal M-th root, M = 2^k: k half-angle steps, each the bisector of
       h and the positive real axis, (Re h + |h|, Im h) or, for Re h < 0, the
       same direction without cancellation, (|Im h|, +-(|h| - Re h)); one
@@ -50,8 +53,9 @@ Implementation notes
     * The unwrapping decision uses only the signs of Im S_{i-1}, Im S_i and of
       their cross product (exactly the rule above); it is an increment of -1,
       0 or +1 of the index k (mod M), computed element-wise. The serial pass
-      only accumulates k; the phasor e^{j theta} is the principal root times
-      e^{j 2 pi k / M}, float32.
+      only accumulates k (for M = 2^j, eight int8 codes per uint64 word, summed
+      byte-wise by one multiplication); the phasor e^{j theta} is the
+      principal root times e^{j 2 pi k / M}, float32.
     * When S_i = 0 (only gaps in the window, or terms that cancel) theta is
       held and the decision for the next nonzero S uses the last nonzero one.
     * A reset at sample r: input samples r-D .. r-1 not yet output are
@@ -62,7 +66,9 @@ Implementation notes
 """
 
 import numpy as np
-from numba import njit
+from llvmlite import ir
+from numba import njit, types
+from numba.extending import intrinsic
 
 # weightings ------------------------------------------------------------------------
 WEIGHT_POWER = 0
@@ -107,8 +113,10 @@ class FeedforwardBuffers:
     last entry 0); ``delay_x``: the last ``window // 2`` input samples (complex64);
     ``delay_p``/``delay_f``: phasor and frequency (rad/sample) assigned at a reset
     to each sample still in the delay; ``hist_re``/``hist_im``: the phasor of the
-    last ``window`` estimates (frequency diagnostic). The rest (length PIECE) is
-    scratch, overwritten by every call.
+    last ``window`` estimates (frequency diagnostic). The rest is scratch for one
+    piece of PIECE samples, overwritten by every call: ``scratch`` (float64 terms,
+    window sums, scale), ``scratch32`` (row 0: principal roots, re and im
+    interleaved; row 1: phasor re, then im), ``codes`` (int8 decisions, index k).
     """
 
     def __init__(self, window):
@@ -122,7 +130,7 @@ class FeedforwardBuffers:
         self.hist_re = np.ones(window)
         self.hist_im = np.zeros(window)
         self.scratch = np.zeros((5, PIECE))              # t re/im, S re/im, scale (float64)
-        self.scratch32 = np.zeros((4, PIECE), np.float32)  # root re/im, phasor re/im
+        self.scratch32 = np.zeros((2, 2 * PIECE), np.float32)  # roots (re, im interleaved); phasor re | im
         self.codes = np.zeros((2, PIECE), np.int8)       # decision, index k
 
     def arrays(self):
@@ -316,29 +324,37 @@ def _sliding_sums(tr, ti, resets, state, ring_re, ring_im, suffix_re, suffix_im,
     state[S_PREFIX_IM] = pfi
 
 
-# --- 3. rotation, scaling, principal roots, decisions (element-wise) -------------------
+# --- 3. rotation and scaling; principal roots and decisions (element-wise) -------------
 
-@njit(cache=True, error_model="numpy")
-def _rotate(sr, si, rot_re, rot_im, big):
-    """S <- S e^{-jM pa} in place; ``big`` = max(|Re S|, |Im S|)."""
-    for n in range(sr.shape[0]):
-        a = sr[n] * rot_re - si[n] * rot_im
-        b = sr[n] * rot_im + si[n] * rot_re
-        sr[n] = a
-        si[n] = b
-        aa = abs(a)
-        bb = abs(b)
-        big[n] = aa if aa > bb else bb
+@intrinsic
+def _float_bits(typingctx, v):
+    """The IEEE bits of a float64 as an int64 (a register move; vectorisable)."""
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], ir.IntType(64))
+    return types.int64(types.float64), codegen
 
 
-@njit(cache=True, error_model="numpy")
-def _power_of_two_scales(bits):
-    """In place on the int64 view of non-negative float64 values v: 2^-e with e the
-    exponent of v (v 2^-e in [1, 2); clamped to 2^-1022 .. 2^1023), exact to apply."""
-    for n in range(bits.shape[0]):
-        e = 2046 - (bits[n] >> 52)
-        e = 1 if e < 1 else e
-        bits[n] = e << 52
+@intrinsic
+def _bits_float(typingctx, v):
+    """The float64 whose IEEE bits are the int64 ``v``."""
+    def codegen(context, builder, signature, args):
+        return builder.bitcast(args[0], ir.DoubleType())
+    return types.float64(types.int64), codegen
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _rotated_scaled(sr, si, rot_re, rot_im):
+    """S e^{-jM pa} times 2^-e, e the exponent of its larger component (which then lies
+    in [1, 2)); the power of two, clamped to 2^-1022 .. 2^1023, is applied exactly."""
+    a = sr * rot_re - si * rot_im
+    b = sr * rot_im + si * rot_re
+    aa = abs(a)
+    bb = abs(b)
+    big = aa if aa > bb else bb
+    e = 2046 - (_float_bits(big) >> 52)
+    e = 1 if e < 1 else e
+    scale = _bits_float(e << 52)
+    return a * scale, b * scale
 
 
 @njit(cache=True, inline="always", error_model="numpy")
@@ -358,69 +374,22 @@ def _right_half(hr, hi):
 
 
 @njit(cache=True, inline="always", error_model="numpy")
-def _store_unit(hr, hi, zero, rr, ri, n):
+def _principal_root(a, b, halvings):
+    """e^{j arg(S)/M}, M = 2^halvings, of the scaled S = (a, b): float32 unit phasor,
+    (1, 0) for S = 0. ``halvings`` is a constant wherever this is inlined."""
+    hr = np.float32(a)
+    hi = np.float32(b)
+    zero = (a == 0.0) & (b == 0.0)
+    if halvings >= 1:
+        hr, hi = _first_half(hr, hi)
+    if halvings >= 2:
+        hr, hi = _right_half(hr, hi)
+    if halvings >= 3:
+        hr, hi = _right_half(hr, hi)
+    if halvings >= 4:
+        hr, hi = _right_half(hr, hi)
     inv = np.float32(1.0) / np.sqrt(hr * hr + hi * hi)
-    rr[n] = np.float32(1.0) if zero else hr * inv
-    ri[n] = np.float32(0.0) if zero else hi * inv
-
-
-@njit(cache=True, error_model="numpy")
-def _principal_roots(sr, si, scale, power, rr, ri):
-    """S <- S scale (exact), then the principal M-th root e^{j phi}, phi = arg(S)/M in
-    (-pi/M, pi/M], as a float32 unit phasor in rr, ri; (1, 0) where S = 0."""
-    n_items = sr.shape[0]
-    halvings = -1
-    if power & (power - 1) == 0:
-        halvings = 0
-        m = power
-        while m > 1:
-            m >>= 1
-            halvings += 1
-    for n in range(n_items):
-        a = sr[n] * scale[n]
-        b = si[n] * scale[n]
-        sr[n] = a
-        si[n] = b
-    # one loop per number of half-angle steps, so that each is a plain vectorisable loop
-    if halvings == 0:
-        for n in range(n_items):
-            hr = np.float32(sr[n])
-            hi = np.float32(si[n])
-            _store_unit(hr, hi, (hr == 0) & (hi == 0), rr, ri, n)
-    elif halvings == 1:
-        for n in range(n_items):
-            hr, hi = _first_half(np.float32(sr[n]), np.float32(si[n]))
-            _store_unit(hr, hi, (sr[n] == 0.0) & (si[n] == 0.0), rr, ri, n)
-    elif halvings == 2:
-        for n in range(n_items):
-            hr, hi = _first_half(np.float32(sr[n]), np.float32(si[n]))
-            hr, hi = _right_half(hr, hi)
-            _store_unit(hr, hi, (sr[n] == 0.0) & (si[n] == 0.0), rr, ri, n)
-    elif halvings == 3:
-        for n in range(n_items):
-            hr, hi = _first_half(np.float32(sr[n]), np.float32(si[n]))
-            hr, hi = _right_half(hr, hi)
-            hr, hi = _right_half(hr, hi)
-            _store_unit(hr, hi, (sr[n] == 0.0) & (si[n] == 0.0), rr, ri, n)
-    elif halvings == 4:
-        for n in range(n_items):
-            hr, hi = _first_half(np.float32(sr[n]), np.float32(si[n]))
-            hr, hi = _right_half(hr, hi)
-            hr, hi = _right_half(hr, hi)
-            hr, hi = _right_half(hr, hi)
-            _store_unit(hr, hi, (sr[n] == 0.0) & (si[n] == 0.0), rr, ri, n)
-    else:
-        for n in range(n_items):
-            a = sr[n]
-            b = si[n]
-            if a == 0.0 and b == 0.0:
-                rr[n] = 1.0
-                ri[n] = 0.0
-                continue
-            ang = np.pi if (b == 0.0 and a < 0.0) else np.arctan2(b, a)
-            ang /= power
-            rr[n] = np.cos(ang)
-            ri[n] = np.sin(ang)
+    return (np.float32(1.0) if zero else hr * inv), (np.float32(0.0) if zero else hi * inv)
 
 
 @njit(cache=True, inline="always")
@@ -433,30 +402,131 @@ def _decision(pr, pi_, sr, si):
 
 
 @njit(cache=True, error_model="numpy")
-def _decisions(sr, si, w_re, w_im, code):
-    """Decision code of every sample: the increment against the previous S (``w``
-    for the first), or ZERO_SUM where S = 0. Returns the number of zero sums."""
-    n_items = sr.shape[0]
+def _rotate_scale(sr, si, rot_re, rot_im):
+    """S <- S e^{-jM pa}, scaled by a power of two (see _rotated_scaled), in place."""
+    for n in range(sr.shape[0]):
+        sr[n], si[n] = _rotated_scaled(sr[n], si[n], rot_re, rot_im)
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _root_runs(sr, si, halvings, rf, code):
+    """The element-wise loop of _roots_and_decisions from the second sample on (the
+    previous S is at n, the current at n + 1; ``rf``, ``code`` start at the second
+    sample, so every index runs from 0)."""
     zeros = 0
+    for n in range(sr.shape[0] - 1):
+        a0 = sr[n]
+        b0 = si[n]
+        a = sr[n + 1]
+        b = si[n + 1]
+        rf[2 * n], rf[2 * n + 1] = _principal_root(a, b, halvings)
+        z = (a == 0.0) & (b == 0.0)
+        code[n] = ZERO_SUM if z else _decision(a0, b0, a, b)
+        zeros += 1 if z else 0
+    return zeros
+
+
+@njit(cache=True, error_model="numpy")
+def _roots_and_decisions(sr, si, w_re, w_im, power, rf, code):
+    """For every rotated and scaled window sum S (``sr``, ``si``): its principal M-th
+    root e^{j phi}, phi = arg(S)/M in (-pi/M, pi/M], as a float32 unit phasor
+    (interleaved re, im in ``rf``; (1, 0) where S = 0) and its decision code: the
+    increment against the previous S (``w`` for the first) or ZERO_SUM where S = 0.
+    Returns the number of zero sums."""
+    n_items = sr.shape[0]
     if n_items == 0:
         return 0
-    z = (sr[0] == 0.0) & (si[0] == 0.0)
-    code[0] = ZERO_SUM if z else _decision(w_re, w_im, sr[0], si[0])
-    zeros += 1 if z else 0
-    for n in range(1, n_items):
-        z = (sr[n] == 0.0) & (si[n] == 0.0)
-        d = _decision(sr[n - 1], si[n - 1], sr[n], si[n])
-        code[n] = ZERO_SUM if z else d
+    if power & (power - 1) != 0:
+        return _roots_and_decisions_any(sr, si, w_re, w_im, power, rf, code)
+    a = sr[0]
+    b = si[0]
+    z = (a == 0.0) & (b == 0.0)
+    code[0] = ZERO_SUM if z else _decision(w_re, w_im, a, b)
+    zeros = 1 if z else 0
+    # one loop per M (half-angle steps unrolled), so that each vectorises
+    if power == 1:
+        rf[0], rf[1] = _principal_root(a, b, 0)
+        zeros += _root_runs(sr, si, 0, rf[2:], code[1:])
+    elif power == 2:
+        rf[0], rf[1] = _principal_root(a, b, 1)
+        zeros += _root_runs(sr, si, 1, rf[2:], code[1:])
+    elif power == 4:
+        rf[0], rf[1] = _principal_root(a, b, 2)
+        zeros += _root_runs(sr, si, 2, rf[2:], code[1:])
+    elif power == 8:
+        rf[0], rf[1] = _principal_root(a, b, 3)
+        zeros += _root_runs(sr, si, 3, rf[2:], code[1:])
+    else:
+        rf[0], rf[1] = _principal_root(a, b, 4)
+        zeros += _root_runs(sr, si, 4, rf[2:], code[1:])
+    return zeros
+
+
+@njit(cache=True, error_model="numpy")
+def _roots_and_decisions_any(sr, si, w_re, w_im, power, rf, code):
+    """_roots_and_decisions for M not a power of two: the root by atan2/cos/sin
+    (float64); S on the negative real axis gives +pi/M."""
+    zeros = 0
+    pr = w_re
+    pi_ = w_im
+    for n in range(sr.shape[0]):
+        a = sr[n]
+        b = si[n]
+        z = (a == 0.0) & (b == 0.0)
+        code[n] = ZERO_SUM if z else _decision(pr, pi_, a, b)
         zeros += 1 if z else 0
+        pr = a
+        pi_ = b
+        if z:
+            rf[2 * n] = 1.0
+            rf[2 * n + 1] = 0.0
+        else:
+            ang = np.pi if (b == 0.0 and a < 0.0) else np.arctan2(b, a)
+            ang /= power
+            rf[2 * n] = np.cos(ang)
+            rf[2 * n + 1] = np.sin(ang)
     return zeros
 
 
 # --- 4. unwrapping index (serial) --------------------------------------------------------
 
 @njit(cache=True, error_model="numpy")
-def _unwrap_index(code, sr, si, resets, zeros, state, power, kk):
+def _running_index(code, code64, kk, kk64, n, end, k, mask):
+    """kk[j] = (k + code[n] + ... + code[j]) & mask for j in [n, end), codes -1, 0, +1,
+    mask = 2^j - 1 <= 15; returns the last value. Eight codes at a time (one uint64
+    word, ``code64``/``kk64`` view the same rows): bytes c + 1 in {0, 1, 2} summed
+    byte-wise by one multiplication (sums <= 16, so no carries cross bytes); adding
+    15 - i to byte i turns sum - (i + 1) into a nonnegative number, 16 = 0 mod 2^j."""
+    ones = np.uint64(0x0101010101010101)
+    low7 = np.uint64(0x7F7F7F7F7F7F7F7F)
+    high = np.uint64(0x8080808080808080)
+    offsets = np.uint64(0x08090A0B0C0D0E0F)     # byte i: 15 - i
+    masks = np.uint64(mask) * ones
+    k &= mask
+    j = n
+    while j < end and (j & 7) != 0:
+        k = (k + code[j]) & mask
+        kk[j] = k
+        j += 1
+    while j + 8 <= end:
+        c = code64[j >> 3]
+        u = ((c & low7) + ones) ^ (c & high)   # c + 1 per byte
+        v = u * ones + offsets + np.uint64(k) * ones
+        kk64[j >> 3] = v & masks
+        k = np.int64((v >> np.uint64(56)) & np.uint64(mask))
+        j += 8
+    while j < end:
+        k = (k + code[j]) & mask
+        kk[j] = k
+        j += 1
+    return k
+
+
+@njit(cache=True, error_model="numpy")
+def _unwrap_index(code, sr, si, resets, zeros, state, power, kk, code64, kk64):
     """k of every sample (the sum of the increments mod M; 0 at the first nonzero S of
-    a segment; held where S = 0) into ``kk``; updates k, have, w in ``state``."""
+    a segment; held where S = 0) into ``kk``; updates k, have, w in ``state``.
+    ``code64``, ``kk64``: the whole rows of ``code`` and ``kk`` as uint64 words."""
     n_items = code.shape[0]
     n_resets = resets.shape[0]
     k = np.int64(state[S_K])
@@ -473,11 +543,7 @@ def _unwrap_index(code, sr, si, resets, zeros, state, power, kk):
                 next_reset += 1
         end = n_items if next_reset >= n_resets else resets[next_reset]
         if zeros == 0 and have and power & (power - 1) == 0:
-            mask = power - 1                   # the common case: a plain running sum mod 2^j
-            for j in range(n, end):
-                k += code[j]
-                kk[j] = k & mask
-            k &= mask
+            k = _running_index(code, code64, kk, kk64, n, end, k, power - 1)
             if end > n:
                 last_nz = end - 1
         elif zeros == 0 and have:
@@ -523,18 +589,18 @@ def _unwrap_index(code, sr, si, resets, zeros, state, power, kk):
 # --- 5. phasors and outputs (element-wise, holds and resets patched serially) ------------
 
 @njit(cache=True, error_model="numpy")
-def _phasors(rr, ri, kk, power, roots_re, roots_im, pr, pi_):
+def _phasors(rf, kk, power, roots_re, roots_im, pr, pi_):
     """e^{j theta} = principal root times e^{j 2 pi k / M}, float32. M = 2^j: by selects
     (quarter turns, and turns of 2 pi / M and 4 pi / M for M = 8, 16), so that the loop
     vectorises; other M: from the table ``roots``."""
-    n_items = rr.shape[0]
+    n_items = pr.shape[0]
     if power & (power - 1) != 0:
         for n in range(n_items):
             k = np.uint64(kk[n])
             qr = roots_re[k]
             qi = roots_im[k]
-            a = np.float64(rr[n])
-            b = np.float64(ri[n])
+            a = np.float64(rf[2 * n])
+            b = np.float64(rf[2 * n + 1])
             pr[n] = np.float32(a * qr - b * qi)
             pi_[n] = np.float32(a * qi + b * qr)
         return
@@ -550,8 +616,8 @@ def _phasors(rr, ri, kk, power, roots_re, roots_im, pr, pi_):
         k = np.int32(kk[n])
         quarter = ((k << qshl) >> qshr) & 3
         fine = k & fmask
-        a = rr[n]
-        b = ri[n]
+        a = rf[2 * n]
+        b = rf[2 * n + 1]
         f0 = (fine & 1) != 0
         a, b = (a * c1 - b * s1 if f0 else a), (a * s1 + b * c1 if f0 else b)
         f1 = (fine & 2) != 0
@@ -687,10 +753,9 @@ def feedforward(x, out, ref, freq, phase, resets, state, ring_re, ring_im, suffi
         sr = scratch[2, :m]
         si = scratch[3, :m]
         sc = scratch[4, :m]
-        rr = scratch32[0, :m]
-        ri = scratch32[1, :m]
-        pr = scratch32[2, :m]
-        pi_ = scratch32[3, :m]
+        rf = scratch32[0, :2 * m]           # principal roots, re and im interleaved
+        pr = scratch32[1, :m]
+        pi_ = scratch32[1, PIECE:PIECE + m]
         code = codes[0, :m]
         kk = codes[1, :m]
         i0 = np.int64(state[S_TOTAL])       # absolute index of the piece's first sample
@@ -701,14 +766,13 @@ def feedforward(x, out, ref, freq, phase, resets, state, ring_re, ring_im, suffi
         # 2. window sums (serial)
         _sliding_sums(tr, ti, lres, state, ring_re, ring_im, suffix_re, suffix_im, window, sr, si)
         # 3. rotation, exact scaling, principal roots, decisions
-        _rotate(sr, si, rot_re, rot_im, sc)
-        _power_of_two_scales(sc.view(np.int64))
-        _principal_roots(sr, si, sc, power, rr, ri)
-        zeros = _decisions(sr, si, state[S_W_RE], state[S_W_IM], code)
+        _rotate_scale(sr, si, rot_re, rot_im)
+        zeros = _roots_and_decisions(sr, si, state[S_W_RE], state[S_W_IM], power, rf, code)
         # 4. unwrapping index (serial)
-        _unwrap_index(code, sr, si, lres, zeros, state, power, kk)
+        _unwrap_index(code, sr, si, lres, zeros, state, power, kk, codes[0].view(np.uint64),
+                      codes[1].view(np.uint64))
         # 5. phasors
-        _phasors(rr, ri, kk, power, roots_re, roots_im, pr, pi_)
+        _phasors(rf, kk, power, roots_re, roots_im, pr, pi_)
         if zeros > 0:
             _hold(code, pr, pi_, p0r, p0i)
         # outputs: n < n_c0 have no input sample yet (c < 0); n < n_x take it from delay_x

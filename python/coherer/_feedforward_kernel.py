@@ -38,7 +38,11 @@ Implementation notes
       completed) plus the running prefix sum of the current block, both in
       float64 in a fixed order. Nothing is ever subtracted, so one huge
       sample cannot leave a residue behind once it is out of the window, and
-      rounding cannot drift.
+      rounding cannot drift. The suffix sums of a block are read from the
+      piece's terms, and from a ring for the part of the block that arrived
+      in earlier pieces: only the terms of a block still incomplete at the end
+      of a piece are copied to the ring (the summation order is the same
+      whichever array holds a term).
     * Each S is rotated by e^{-jM pa} and scaled by a power of two (exact)
       so that its larger component lies in [1, 2): signs and the unwrapping
       decision are unchanged and the principal root can be taken in float32.
@@ -108,7 +112,8 @@ ZERO_SUM = 2
 class FeedforwardBuffers:
     """Arrays of one estimator instance: what it remembers between calls and scratch.
 
-    ``ring_re``/``ring_im``: terms of the current block (``window``);
+    ``ring_re``/``ring_im``: terms of the current block that arrived in earlier
+    pieces (``window``);
     ``suffix_re``/``suffix_im``: suffix sums of the previous block (``window + 1``,
     last entry 0); ``delay_x``: the last ``window // 2`` input samples (complex64);
     ``delay_p``/``delay_f``: phasor and frequency (rad/sample) assigned at a reset
@@ -257,28 +262,34 @@ def _general_power(tr, ti, expo):
 # --- 2. window sums (serial) ------------------------------------------------------------
 
 @njit(cache=True, inline="always", error_model="numpy")
-def _prefix_run(tr, ti, ring_re, ring_im, sfx_re, sfx_im, pfr, pfi, sr, si):
+def _prefix_run(tr, ti, sfx_re, sfx_im, pfr, pfi, sr, si):
     """Part of one block: running prefix sum plus the previous block's suffix sums
     (all arrays start at the run's first sample: indices from 0, no wraparound)."""
     for q in range(tr.shape[0]):
-        t_r = tr[q]
-        t_i = ti[q]
-        ring_re[q] = t_r
-        ring_im[q] = t_i
-        pfr += t_r
-        pfi += t_i
+        pfr += tr[q]
+        pfi += ti[q]
         sr[q] = sfx_re[q] + pfr
         si[q] = sfx_im[q] + pfi
     return pfr, pfi
 
 
 @njit(cache=True, inline="always", error_model="numpy")
-def _suffix_sums(ring_re, ring_im, suffix_re, suffix_im, window):
-    """Reverse cumulative sums of a completed block (suffix[window] stays 0)."""
+def _suffix_sums(tr, ti, ring_re, ring_im, suffix_re, suffix_im, pos, window):
+    """Reverse cumulative sums of a completed block (suffix[window] stays 0): block
+    positions ``pos`` .. ``window - 1`` are the terms ``tr``, ``ti`` of this run,
+    positions 0 .. ``pos - 1`` were kept in the ring (earlier pieces); summed from the
+    last position down, whichever array holds the term."""
     acc_r = 0.0
     acc_i = 0.0
-    for q in range(window):
+    for q in range(window - pos):
         p = np.uint64(window - 1 - q)
+        u = np.uint64(window - pos - 1 - q)
+        acc_r += tr[u]
+        acc_i += ti[u]
+        suffix_re[p] = acc_r
+        suffix_im[p] = acc_i
+    for q in range(pos):
+        p = np.uint64(pos - 1 - q)
         acc_r += ring_re[p]
         acc_i += ring_im[p]
         suffix_re[p] = acc_r
@@ -289,7 +300,8 @@ def _suffix_sums(ring_re, ring_im, suffix_re, suffix_im, window):
 def _sliding_sums(tr, ti, resets, state, ring_re, ring_im, suffix_re, suffix_im, window, sr, si):
     """Sum of t over the window ending at each sample: the previous block's suffix
     sum plus the current block's prefix sum (blocks of ``window`` samples since the
-    last reset); the window restarts empty at each reset."""
+    last reset); the window restarts empty at each reset. Only the terms of a block
+    still incomplete at the end of the piece are copied to the ring."""
     n_items = tr.shape[0]
     n_resets = resets.shape[0]
     pos = np.int64(state[S_POS])
@@ -310,15 +322,20 @@ def _sliding_sums(tr, ti, resets, state, ring_re, ring_im, suffix_re, suffix_im,
         end = min(n_items, n + window - pos)
         if next_reset < n_resets:
             end = min(end, resets[next_reset])
-        pfr, pfi = _prefix_run(tr[n:end], ti[n:end], ring_re[pos:], ring_im[pos:],
-                               suffix_re[pos + 1:], suffix_im[pos + 1:], pfr, pfi, sr[n:end], si[n:end])
-        pos += end - n
-        n = end
-        if pos == window:
-            _suffix_sums(ring_re, ring_im, suffix_re, suffix_im, window)
+        pfr, pfi = _prefix_run(tr[n:end], ti[n:end], suffix_re[pos + 1:], suffix_im[pos + 1:],
+                               pfr, pfi, sr[n:end], si[n:end])
+        if pos + end - n == window:
+            _suffix_sums(tr[n:end], ti[n:end], ring_re, ring_im, suffix_re, suffix_im, pos, window)
             pos = 0
             pfr = 0.0
             pfi = 0.0
+        else:
+            if end == n_items:      # the block continues in the next piece: keep its terms
+                for j in range(end - n):
+                    ring_re[pos + j] = tr[n + j]
+                    ring_im[pos + j] = ti[n + j]
+            pos += end - n
+        n = end
     state[S_POS] = pos
     state[S_PREFIX_RE] = pfr
     state[S_PREFIX_IM] = pfi

@@ -74,6 +74,8 @@ from llvmlite import ir
 from numba import njit, types
 from numba.extending import intrinsic
 
+from ._numeric import unit_pair_power
+
 # weightings ------------------------------------------------------------------------
 WEIGHT_POWER = 0
 WEIGHT_MAGNITUDE = 1
@@ -152,12 +154,24 @@ def new_state():
     return st
 
 
-def power_weight_cap(power):
-    """Amplitude cap used by the power weighting, ``10^(294/M)``."""
-    return 10.0 ** (POWER_WEIGHT_EXPONENT_CAP / power)
-
-
 # --- 1. terms (element-wise) ------------------------------------------------------------
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _unit_phase_terms(xf, power, tr, ti):
+    """Phase-only terms ``(x/|x|)^M`` (0 for a gap) of the float32 view ``xf`` into
+    ``tr``, ``ti``; returns the number of gaps."""
+    gaps = 0
+    for n in range(tr.shape[0]):
+        xr = np.float64(xf[2 * n])
+        xi = np.float64(xf[2 * n + 1])
+        p2 = xr * xr + xi * xi
+        ok = (p2 > 0.0) & (p2 < np.inf)
+        vr, vi = unit_pair_power(xr, xi, p2 if ok else 1.0, power)
+        tr[n] = vr if ok else 0.0
+        ti[n] = vi if ok else 0.0
+        gaps += 0 if ok else 1
+    return gaps
+
 
 @njit(cache=True, error_model="numpy")
 def _mth_power_terms(xf, power, weighting, tr, ti, scale):
@@ -170,24 +184,10 @@ def _mth_power_terms(xf, power, weighting, tr, ti, scale):
     cap = 10.0 ** (POWER_WEIGHT_EXPONENT_CAP / power)
     cap2 = cap * cap
     if weighting == WEIGHT_PHASE and even and power <= 4:
-        # e^{j2 arg x} = x^2 / |x|^2, squared once more for M = 4
-        square = power == 4
-        for n in range(n_items):
-            xr = np.float64(xf[2 * n])
-            xi = np.float64(xf[2 * n + 1])
-            p2 = xr * xr + xi * xi
-            ok = (p2 > 0.0) & (p2 < np.inf)
-            inv = 1.0 / (p2 if ok else 1.0)
-            vr = (xr * xr - xi * xi) * inv
-            vi = 2.0 * xr * xi * inv
-            if square:
-                a = vr * vr - vi * vi
-                vi = 2.0 * vr * vi
-                vr = a
-            tr[n] = vr if ok else 0.0
-            ti[n] = vi if ok else 0.0
-            gaps += 0 if ok else 1
-        return gaps
+        # e^{jM arg x} from x^2 / |x|^2 (no square root); M as a literal: straight-line SIMD
+        if power == 2:
+            return _unit_phase_terms(xf, 2, tr, ti)
+        return _unit_phase_terms(xf, 4, tr, ti)
     # general: base b and exponent e with t = mag * b^e
     #   phase, even M: b = x^2/|x|^2, e = M/2        phase, odd M: b = x/|x|, e = M
     #   power, even M: b = x^2 c^2, e = M/2           power, odd M: b = x c, e = M

@@ -3,6 +3,8 @@
 
 import numpy as np
 
+from ..mth_power_loop_cc import default_point_angle
+
 #: Es/N0 of the benchmark streams, dB (a comfortably locked operating point).
 BENCH_ESN0_DB = 12.0
 #: Carrier frequency offset of the benchmark streams, cycles/sample.
@@ -26,7 +28,7 @@ def corrected_stream(power, n, seed=0):
     """What a lock detector sees behind a locked loop: :func:`psk_stream` with no
     carrier offset and one constellation point at angle 0 (M = 4: pi/4, as the
     loops output)."""
-    return psk_stream(power, n, offset=0.0, seed=seed, phase=np.pi / 4 if power == 4 else 0.0)
+    return psk_stream(power, n, offset=0.0, seed=seed, phase=default_point_angle(power))
 
 
 def write_cf32(path, x):

@@ -33,6 +33,7 @@ bandwidth of the discrete loop equals the requested one to 1e-9.
 """
 
 from dataclasses import dataclass
+from functools import lru_cache
 from math import comb, factorial, fsum, inf, pi, sqrt
 
 import numpy as np
@@ -329,16 +330,35 @@ def mth_power_noise(power, esn0):
     return sum(comb(power, k) ** 2 * factorial(k) * s2 ** k for k in range(1, power + 1))
 
 
-def squaring_loss(power, esn0):
-    """Squaring loss ``S_L = M^2 s2 / V_M`` (linear, <= 1) at linear Es/N0 ``esn0``."""
+def squaring_loss(power, esn0, *, samples_per_symbol=1, rolloff=0.35, placement="channel",
+                  modulation_index=None):
+    """Squaring loss ``S_L = M^2 s2 / V_M`` (linear, <= 1) at linear Es/N0 ``esn0``.
+
+    With a signal model (see :func:`detector_noise`) other than the unshaped default: the
+    :func:`effective_squaring_loss` of that signal.
+    """
+    model = dict(samples_per_symbol=samples_per_symbol, rolloff=rolloff, placement=placement,
+                 modulation_index=modulation_index)
+    if not _is_unshaped(power, model):
+        return effective_squaring_loss(power, esn0, **model)
     return power * power / (esn0 * mth_power_noise(power, esn0))
 
 
-def phase_error_variance(power, esn0, bt):
+def phase_error_variance(power, esn0, bt, *, samples_per_symbol=1, rolloff=0.35, placement="channel",
+                         modulation_index=None):
     """Linear-theory carrier phase-error variance (rad^2): ``B_L T V_M / M^2``.
 
-    ``bt`` is the loop noise bandwidth times the symbol (update) period.
+    ``bt`` is the loop noise bandwidth times the loop's update (sample) period, ``esn0`` the linear
+    Es/N0 per symbol. With a signal model (samples per symbol, RRC roll-off and placement, or a
+    residual carrier's modulation index; see :func:`detector_noise`) the general linear result
+    ``2 B_L T S_e(0) / M^2`` of the line-normalised detector (Gardner, Phaselock Techniques, from
+    memory, for the loop as a linear filter of the detector noise), which is the expression above
+    in the unshaped default and ``B_L T sigma_n^2 / cos^2(beta)`` for a residual carrier.
     """
+    model = dict(samples_per_symbol=samples_per_symbol, rolloff=rolloff, placement=placement,
+                 modulation_index=modulation_index)
+    if not _is_unshaped(power, model):
+        return 2.0 * bt * detector_noise_density(power, esn0, **model) / (power * power)
     return bt * mth_power_noise(power, esn0) / (power * power)
 
 
@@ -520,8 +540,18 @@ def assess_acquisition(design, offset_hz, budget_s=None):
 SECOND_ORDER_SLIP_SHIFT_DB = 1.0
 
 
-def loop_snr(power, esn0, bt):
-    """Loop SNR in the psi = M phi domain, ``rho_psi = 1 / (B_L T V_M)`` (linear; REFERENCES 5)."""
+def loop_snr(power, esn0, bt, *, samples_per_symbol=1, rolloff=0.35, placement="channel",
+             modulation_index=None):
+    """Loop SNR in the psi = M phi domain, ``rho_psi = 1 / (B_L T V_M)`` (linear; REFERENCES 5).
+
+    With a signal model (:func:`detector_noise`): ``1 / (M^2 var(phi)) = 1 / (2 B_L T S_e(0))``;
+    for a residual carrier that is ``cos^2(beta) / (B_L T sigma_n^2)``, the loop SNR on the
+    carrier's share of the power.
+    """
+    model = dict(samples_per_symbol=samples_per_symbol, rolloff=rolloff, placement=placement,
+                 modulation_index=modulation_index)
+    if not _is_unshaped(power, model):
+        return 1.0 / (2.0 * bt * detector_noise_density(power, esn0, **model))
     return 1.0 / (bt * mth_power_noise(power, esn0))
 
 
@@ -539,8 +569,11 @@ def slip_time_bt_first_order(rho):
     return float(np.exp(log_value)) if log_value < 700.0 else inf
 
 
-def mean_time_between_slips_s(design, esn0):
-    """Mean time (s) between cycle slips of 2 pi / M at linear Es/N0 ``esn0`` per loop update.
+def mean_time_between_slips_s(design, esn0, **signal_model):
+    """Mean time (s) between cycle slips of 2 pi / M at linear Es/N0 ``esn0`` per symbol.
+
+    ``signal_model``: the keyword arguments of :func:`detector_noise` (samples per symbol,
+    roll-off, placement, modulation index); the loop SNR is then that of :func:`loop_snr`.
 
     Viterbi's first-order formula with the M-th power mapping ``rho_psi = 1/(B_L T V_M)``
     (REFERENCES 5), using the exact discrete noise bandwidth. For orders 2 and 3 the loop SNR
@@ -548,7 +581,7 @@ def mean_time_between_slips_s(design, esn0):
     simulations of a 2nd-order loop with zeta 0.707 (not a published formula; for order 3
     and other dampings it is an estimate).
     """
-    rho = loop_snr(design.power, esn0, design.actual_bt)
+    rho = loop_snr(design.power, esn0, design.actual_bt, **signal_model)
     if design.loop_order >= 2:
         rho *= db_to_linear(-SECOND_ORDER_SLIP_SHIFT_DB)
     return slip_time_bt_first_order(rho) / (design.actual_bt * design.sample_rate)
@@ -569,10 +602,342 @@ def tikhonov_phase_variance(rho):
     return fsum([pi * pi / 3.0, *terms.tolist()])
 
 
-def nonlinear_phase_error_variance(power, esn0, bt):
+def nonlinear_phase_error_variance(power, esn0, bt, **signal_model):
     """Carrier phase-error variance (rad^2, phi mod 2 pi / M) from the Tikhonov density at
-    the psi-domain loop SNR ``1/(B_L T V_M)``; first-order loop model."""
-    return tikhonov_phase_variance(loop_snr(power, esn0, bt)) / (power * power)
+    the psi-domain loop SNR ``1/(B_L T V_M)``; first-order loop model. ``signal_model``: the
+    keyword arguments of :func:`detector_noise` (the loop SNR is then :func:`loop_snr`'s)."""
+    return tikhonov_phase_variance(loop_snr(power, esn0, bt, **signal_model)) / (power * power)
+
+
+# --- real receiver signals: pulse shape, band-limited noise, residual carrier -------------------
+#
+# The loops normalise their detector by the M-th power line itself, so the detector is
+#     e[n] = Im(y[n]^M e^{-j M pa}) / L,   L = time mean of E[Re(y^M e^{-j M pa})] at zero phase error,
+# with a mean slope of exactly M per rad of carrier phase for any signal shape. In the linear model
+# the loop's phase-error variance is then  var(phi) = 2 (B_L T) S_e(0) / M^2,  where S_e(0) is the
+# low-frequency spectral density (per sample) of the detector's fluctuation at zero phase error:
+# the sum over all lags of its autocovariance, averaged over the symbol period (the signal is
+# cyclostationary). For white noise at one sample per symbol S_e(0) = V_M / 2 (REFERENCES 4).
+
+#: Signal placements of the pulse-shape model (see :func:`detector_noise`).
+PLACEMENT_CHANNEL = "channel"
+PLACEMENT_MATCHED = "matched"
+PLACEMENTS = (PLACEMENT_CHANNEL, PLACEMENT_MATCHED)
+#: Largest samples per symbol of the pulse-shape model.
+MAX_SAMPLES_PER_SYMBOL = 64
+#: Largest phase-modulation index (rad) of the residual-carrier model.
+MAX_MODULATION_INDEX = 1.4
+#: Span of the root-raised-cosine pulse in symbols (11 N + 1 taps, made odd, as CONVENTIONS 8).
+RRC_SPAN_SYMBOLS = 11
+#: Largest M for which the shaped-signal expectation uses the exp-log series (faster; it loses
+#: digits beyond, where the symbol-by-symbol product is used instead).
+EXP_SERIES_MAX_POWER = 8
+
+
+def validate_signal(power, samples_per_symbol=1, rolloff=0.35, placement=PLACEMENT_CHANNEL,
+                    modulation_index=None):
+    """Raise ``ValueError`` naming the first out-of-range signal-model argument."""
+    n = samples_per_symbol
+    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or not 1 <= n <= MAX_SAMPLES_PER_SYMBOL:
+        raise ValueError(f"samples_per_symbol must be an integer in 1..{MAX_SAMPLES_PER_SYMBOL}, got {n!r}")
+    if isinstance(rolloff, bool) or not isinstance(rolloff, (int, float, np.integer, np.floating)) \
+            or not 0.0 <= rolloff <= 1.0:
+        raise ValueError(f"rolloff must be a number in 0..1, got {rolloff!r}")
+    if placement not in PLACEMENTS:
+        raise ValueError(f"placement must be one of {', '.join(PLACEMENTS)}, got {placement!r}")
+    if modulation_index is not None:
+        beta = modulation_index
+        if isinstance(beta, bool) or not isinstance(beta, (int, float, np.integer, np.floating)) \
+                or not 0.0 <= beta <= MAX_MODULATION_INDEX:
+            raise ValueError(f"modulation_index must be a number in 0..{MAX_MODULATION_INDEX} rad, got {beta!r}")
+        if power != 1:
+            raise ValueError(f"modulation_index applies to a residual carrier (power M = 1) only, got power {power!r}")
+
+
+def _check_esn0(esn0):
+    if isinstance(esn0, bool) or not isinstance(esn0, (int, float, np.integer, np.floating)) \
+            or not np.isfinite(esn0) or esn0 <= 0.0:
+        raise ValueError(f"esn0 must be a positive finite linear Es/N0, got {esn0!r}")
+
+
+def rrc_taps(samples_per_symbol, rolloff):
+    """Root-raised-cosine pulse at ``samples_per_symbol`` samples per symbol, unit energy.
+
+    ``RRC_SPAN_SYMBOLS * N + 1`` taps (made odd), centred: the closed form of the RRC impulse
+    response (Proakis, Digital Communications, ch. 9, from memory) including its limits at t = 0 and
+    t = +-T/(4 alpha). For roll-off > 0 it equals GNU Radio's
+    ``firdes.root_raised_cosine(1, N, 1, rolloff, 11 N + 1)`` up to scale (checked in the tests);
+    roll-off 0 (a truncated sinc), which that designer cannot make, is supported too.
+    """
+    validate_signal(2, samples_per_symbol, rolloff)
+    n_sps, a = int(samples_per_symbol), float(rolloff)
+    ntaps = RRC_SPAN_SYMBOLS * n_sps + 1
+    ntaps += 1 - ntaps % 2
+    t = (np.arange(ntaps) - (ntaps - 1) / 2.0) / n_sps            # time in symbols
+    taps = np.empty(ntaps)
+    for i, ti in enumerate(t):
+        if ti == 0.0:
+            taps[i] = 1.0 - a + 4.0 * a / pi
+        elif a > 0.0 and abs(abs(4.0 * a * ti) - 1.0) < 1e-12:
+            taps[i] = a / sqrt(2.0) * ((1.0 + 2.0 / pi) * np.sin(pi / (4.0 * a))
+                                      + (1.0 - 2.0 / pi) * np.cos(pi / (4.0 * a)))
+        else:
+            taps[i] = (np.sin(pi * ti * (1.0 - a)) + 4.0 * a * ti * np.cos(pi * ti * (1.0 + a))) \
+                / (pi * ti * (1.0 - (4.0 * a * ti) ** 2))
+    return taps / sqrt(float(np.sum(taps * taps)))
+
+
+def noise_variance_per_sample(esn0, samples_per_symbol=1, rolloff=0.35, placement=PLACEMENT_CHANNEL):
+    """Complex noise variance per sample, as the loop sees it, of the pulse-shape model.
+
+    With unit mean signal power per sample before any filter, Es = N (samples per symbol) and the
+    white noise has complex variance ``N / esn0`` per sample (CONVENTIONS 8):
+
+    * ``"matched"``: signal and noise pass the unit-energy matched filter g, which keeps the noise
+      variance: ``N / esn0``;
+    * ``"channel"``: only the noise is band-limited, by a filter of the RRC's shape normalised to unit
+      gain at zero frequency, so the noise density at the carrier stays N0 and Es/N0 keeps its
+      meaning: ``N / (esn0 (sum g)^2)``, about ``1 / esn0`` since ``(sum g)^2`` is about N.
+    * one sample per symbol (the unshaped model): ``1 / esn0``.
+    """
+    _check_esn0(esn0)
+    validate_signal(2, samples_per_symbol, rolloff, placement)
+    n = int(samples_per_symbol)
+    if n == 1:
+        return 1.0 / esn0
+    if placement == PLACEMENT_MATCHED:
+        return n / esn0
+    return n / (esn0 * float(np.sum(rrc_taps(n, rolloff))) ** 2)
+
+
+def _log_bessel_series(order):
+    """Coefficients c_1..c_order of ``log sum_a u^a / (a!)^2`` (that is log I0(2 sqrt(u)))."""
+    f = [1.0 / factorial(a) ** 2 for a in range(order + 1)]
+    c = [0.0] * (order + 1)
+    for k in range(1, order + 1):
+        c[k] = f[k] - sum(j * c[j] * f[k - j] for j in range(1, k)) / k
+    return c
+
+
+def _pulse_matrix(pulse, sps, rows):
+    """``A[r, i] = pulse[rows[r] - i N + c]`` (0 outside the pulse) over every symbol index i that
+    touches any of ``rows``; ``c`` centres the pulse (symbol i peaks at sample i N)."""
+    lp = len(pulse)
+    c = (lp - 1) // 2
+    i_lo = -(-(rows[0] + c - (lp - 1)) // sps)
+    i_hi = (rows[-1] + c) // sps
+    sym = np.arange(i_lo, i_hi + 1)
+    idx = rows[:, None] - sym[None, :] * sps + c
+    inside = (idx >= 0) & (idx < lp)
+    return np.where(inside, pulse[np.clip(idx, 0, lp - 1)], 0.0)
+
+
+@dataclass(frozen=True, eq=False)
+class _ShapedTerms:
+    """SNR-independent pieces of the M-PSK detector statistics for one pulse and noise correlation,
+    with the signal at unit mean power per sample (see :func:`_shaped_terms`)."""
+    line: float                 #: L: time mean of E[y^M] e^{-jM pa}
+    self_im: float              #: pattern-jitter density of Im(y^M e^{-jM pa}), per sample
+    self_c: float               #: pattern-jitter density of the complex fluctuation of y^M
+    noise_im: tuple             #: a_k, k = 1..M: density of Im(...) from noise, sum_k a_k v^k
+    power_self: float           #: time mean of E|s^M|^2
+    power_noise: tuple          #: b_k, k = 1..M: time mean of E|y^M|^2 = power_self + sum_k b_k v^k
+
+
+def _shaped_statistics(power, sps, pulse, rho):
+    """Exact expectation over M-PSK symbol patterns and circular Gaussian noise (no Monte Carlo).
+
+    ``pulse``: the signal pulse (any scale; the signal is set to unit mean power per sample),
+    ``rho``: the noise autocorrelation (odd length, centred, rho[0] = 1). Derivation [derived here]:
+    with y = s + w, given the symbols the noise adds nothing to E[y^M] and
+    ``E[y1^M conj(y2^M) | s] - s1^M conj(s2^M) = sum_k C(M,k)^2 k! r^k (s1 conj s2)^(M-k)``,
+    ``E[y1^M y2^M | s] = s1^M s2^M`` (Isserlis, circular noise). Over i.i.d. M-PSK symbols only
+    exponent patterns that cancel mod M survive: for j < M,
+    ``E[(s1 conj s2)^j] = j!^2 [t^j] prod_i F(x_i t)``, ``F(u) = sum_a u^a/(a!)^2``,
+    ``x_i = p1_i p2_i`` (the taps of symbol i at the two times), evaluated as
+    ``exp(sum_k c_k S_k t^k)`` from the power sums ``S_k = sum_i x_i^k``; the pattern-jitter
+    covariance of Im(s^M) follows from the same series at j = M and the pair moments
+    ``sum_i p1^a p2^(M-a)``.
+    """
+    m = int(power)
+    pulse = np.asarray(pulse, dtype=float)
+    pulse = pulse * sqrt(sps / float(np.sum(pulse * pulse)))       # unit mean power per sample
+    lp = len(pulse)
+    rows = np.arange(-(lp - 1), sps + lp - 1)                     # m: every time sharing a symbol
+    a_all = _pulse_matrix(pulse, sps, rows)
+    a_n = a_all[lp - 1:lp - 1 + sps]                              # n = 0..N-1
+    lag = rows[None, :] - np.arange(sps)[:, None]                 # m - n
+    half = (len(rho) - 1) // 2
+    rho_lag = np.where(np.abs(lag) <= half, rho[np.clip(lag + half, 0, len(rho) - 1)], 0.0)
+    powers_n = [np.ones_like(a_n)] + [a_n ** k for k in range(1, m + 1)]
+    powers_all = [np.ones_like(a_all)] + [a_all ** k for k in range(1, m + 1)]
+
+    def pair_sum(j, k):
+        """sum_i p_n,i^j p_m,i^k for every (n, m), without BLAS (see solve_small)."""
+        return np.einsum("ni,ri->nr", powers_n[j], powers_all[k], optimize=False)
+
+    s_k = [None] + [pair_sum(k, k) for k in range(1, m + 1)]
+    p = [np.ones_like(s_k[1])]
+    if m <= EXP_SERIES_MAX_POWER:
+        c = _log_bessel_series(m)
+        for d in range(1, m + 1):
+            p.append(sum(k * c[k] * s_k[k] * p[d - k] for k in range(1, d + 1)) / d)
+    else:                       # the exp-log series loses digits beyond M = 8: multiply out the product
+        p += [np.zeros_like(p[0]) for _ in range(m)]
+        inv = [1.0 / factorial(a) ** 2 for a in range(m + 1)]
+        for i in range(a_all.shape[1]):
+            x = np.outer(a_n[:, i], a_all[:, i])
+            x_pow = [np.ones_like(x), x]
+            for a in range(2, m + 1):
+                x_pow.append(x_pow[-1] * x)
+            for d in range(m, 0, -1):
+                p[d] = p[d] + sum(p[d - a] * (x_pow[a] * inv[a]) for a in range(1, d + 1))
+    cov = factorial(m) ** 2 * p[m] - s_k[m]                        # Cov(s_n^M, conj s_m^M)
+    moment = [None] + [pair_sum(a, m - a) for a in range(1, m)]
+    pcov = 0.5 * sum(comb(m, a) ** 2 * (moment[a] * moment[m - a] - s_k[m]) for a in range(1, m)) \
+        if m > 1 else np.zeros_like(cov)                           # E[u_n u_m] - lambda_n lambda_m
+    line = float(np.mean(np.sum(powers_n[m], axis=1)))
+    self_im = float(np.sum(0.5 * (cov - pcov))) / sps
+    self_c = float(np.sum(cov)) / sps
+    at_zero = lp - 1 + np.arange(sps)                              # column of m = n for each n
+    noise_im, power_noise = [], []
+    for k in range(1, m + 1):
+        weight = comb(m, k) ** 2 * factorial(k) * factorial(m - k) ** 2
+        if k < m:
+            noise_im.append(weight * 0.5 * float(np.sum(rho_lag ** k * p[m - k])) / sps)
+        else:                                                      # pure noise: every lag of rho counts
+            noise_im.append(weight * 0.5 * float(np.sum(rho ** k)))
+        power_noise.append(weight * float(np.mean(p[m - k][np.arange(sps), at_zero])))
+    power_self = float(np.mean(np.sum(powers_n[m], axis=1) ** 2 + cov[np.arange(sps), at_zero]))
+    return _ShapedTerms(line, self_im, self_c, tuple(noise_im), power_self, tuple(power_noise))
+
+
+@lru_cache(maxsize=256)
+def _shaped_terms(power, samples_per_symbol, rolloff, placement):
+    """:func:`_shaped_statistics` for the RRC model of :func:`detector_noise` (cached: a pure
+    function of M, N, roll-off and placement; Es/N0 only enters through the noise polynomial)."""
+    n = int(samples_per_symbol)
+    g = rrc_taps(n, rolloff)
+    rc = np.convolve(g, g)                         # raised cosine: matched-filter pulse and noise correlation
+    rho = rc / rc[(len(rc) - 1) // 2]
+    pulse = g if placement == PLACEMENT_CHANNEL else rc
+    return _shaped_statistics(int(power), n, pulse, rho)
+
+
+@dataclass(frozen=True)
+class DetectorNoise:
+    """Statistics of the line-normalised M-th power detector at zero phase error, per sample.
+
+    ``density`` is S_e(0), the low-frequency spectral density of the detector output
+    ``Im(y^M e^{-jM pa}) / L`` (sum over lags of its autocovariance, time-averaged);
+    ``self_noise`` the part that remains without noise (pattern jitter of the pulse shape),
+    ``thermal`` the rest. ``line`` is L with the signal at unit mean power per sample (1 for a
+    constant envelope, cos(beta) for a residual carrier). ``line_snr`` and ``line_to_power`` serve
+    the acquisition prediction: the M-th power line over the low-frequency density of the complex
+    fluctuation of y^M, and over the mean power of y^M.
+    """
+    density: float
+    self_noise: float
+    thermal: float
+    line: float
+    noise_variance: float      #: complex noise variance per sample in the signal's scale
+    line_snr: float            #: L^2 / S_c(0), per sample
+    line_to_power: float       #: L^2 / E|y^M|^2
+
+
+def detector_noise(power, esn0, *, samples_per_symbol=1, rolloff=0.35, placement=PLACEMENT_CHANNEL,
+                   modulation_index=None):
+    """Detector noise density S_e(0) (and its parts) of the line-normalised M-th power detector.
+
+    Parameters
+    ----------
+    power : int               symmetry order M (1..MAX_POWER)
+    esn0 : float              linear Es/N0 per symbol
+    samples_per_symbol : int  N, 1..64; 1 is the unshaped one-sample-per-symbol model
+    rolloff : float           RRC roll-off 0..1 (N > 1 only)
+    placement : str           ``"channel"``: RRC-shaped symbols in noise band-limited by the RRC
+                              shape (what a loop sees before a matched filter, behind a channel
+                              filter); ``"matched"``: after the matched filter (raised-cosine signal,
+                              RRC-filtered noise). See :func:`noise_variance_per_sample` for the
+                              noise level.
+    modulation_index : float  for M = 1 only: a residual carrier ``e^{j beta d}`` phase-modulated
+                              by bi-phase (Manchester) +-1 data at index beta (0..1.4 rad), in white
+                              noise; roll-off and placement do not apply.
+
+    Models (units: per sample; divide by N for per symbol)
+        * M-PSK, N = 1: ``V_M / 2`` (REFERENCES 4, Lindsey & Simon 1973, from memory).
+        * M = 1 without modulation index: a plain carrier; only noise at the carrier counts,
+          ``S_e(0) = (v / 2) sum_tau rho(tau)``, which is ``N / (2 Es/N0)`` in both placements.
+        * Residual carrier: L = cos(beta); Manchester data has no spectral density at zero
+          frequency, so ``S_e(0) = (sigma_n^2 / 2) / cos^2(beta)`` with ``sigma_n^2 = N / Es/N0``
+          [derived; the continuous form is N0 B_L / (P cos^2 beta), Gardner, Phaselock Techniques,
+          from memory].
+        * Shaped M-PSK, N > 1: exact expectation over symbol patterns and noise
+          (:func:`_shaped_statistics`; no closed form is known for the pulse self-noise, the
+          pattern jitter of non-data-aided synchronisers of rotationally symmetric constellations:
+          Moeneclaey & de Jonghe, IEEE Trans. Commun. 1994, from memory). The only approximation is
+          the RRC truncated to 11 symbols, as the framework's designer does.
+    """
+    _check_esn0(esn0)
+    validate_spec(1.0, power, 0.01, 1.0, 1)
+    validate_signal(power, samples_per_symbol, rolloff, placement, modulation_index)
+    m, n = int(power), int(samples_per_symbol)
+    if modulation_index is not None:
+        beta = float(modulation_index)
+        v = n / esn0
+        line = np.cos(beta)
+        if line <= 0.0:
+            raise ValueError(f"modulation_index must leave a carrier (cos(beta) > 0), got {modulation_index!r}")
+        density = 0.5 * v / line ** 2
+        return DetectorNoise(density, 0.0, density, float(line), v, line ** 2 / v, line ** 2 / (1.0 + v))
+    if n == 1:
+        v = 1.0 / esn0
+        vm = mth_power_noise(m, esn0)
+        return DetectorNoise(0.5 * vm, 0.0, 0.5 * vm, 1.0, v, 1.0 / vm, 1.0 / (1.0 + vm))
+    v_phys = noise_variance_per_sample(esn0, n, rolloff, placement)
+    if m == 1:
+        g = rrc_taps(n, rolloff)
+        rho_sum = float(np.sum(g)) ** 2               # sum over lags of the RRC-filtered noise correlation
+        if placement == PLACEMENT_CHANNEL:
+            line, v = 1.0, v_phys                      # the carrier is not filtered
+        else:
+            line, v = 1.0, v_phys / rho_sum            # carrier through g: amplitude sum(g)
+        density = 0.5 * v * rho_sum
+        return DetectorNoise(density, 0.0, density, line, v, 1.0 / (v * rho_sum), 1.0 / (1.0 + v))
+    terms = _shaped_terms(m, n, float(rolloff), placement)
+    g = rrc_taps(n, rolloff)
+    signal_power = 1.0 if placement == PLACEMENT_CHANNEL else float(np.sum(np.convolve(g, g) ** 2))
+    v = v_phys / signal_power                           # noise variance with the signal at unit power
+    thermal = sum(a * v ** k for k, a in enumerate(terms.noise_im, start=1))
+    fluct_c = terms.self_c + 2.0 * thermal
+    z_power = terms.power_self + sum(b * v ** k for k, b in enumerate(terms.power_noise, start=1))
+    l2 = terms.line ** 2
+    return DetectorNoise((terms.self_im + thermal) / l2, terms.self_im / l2, thermal / l2, terms.line, v,
+                         l2 / fluct_c, l2 / z_power)
+
+
+def detector_noise_density(power, esn0, **signal_model):
+    """S_e(0) of :func:`detector_noise` (per sample); ``V_M / 2`` in the unshaped model."""
+    return detector_noise(power, esn0, **signal_model).density
+
+
+def _is_unshaped(power, signal_model):
+    """Validate a signal model; true for the unshaped default (one sample per symbol, no modulation
+    index), where the predictions keep their closed forms of REFERENCES 4."""
+    validate_signal(power, **signal_model)
+    return signal_model.get("samples_per_symbol", 1) == 1 and signal_model.get("modulation_index") is None
+
+
+def effective_squaring_loss(power, esn0, **signal_model):
+    """Effective squaring loss (linear, <= 1 for a loss): ``var(phi) = B_L T_s / (Es/N0 * S_L)``
+    with T_s the symbol period, i.e. ``S_L = N M^2 / (2 Es/N0 S_e(0))``.
+
+    Equals :func:`squaring_loss` (Lindsey & Simon 1973, from memory) in the unshaped model,
+    cos^2(beta) (the carrier share) for a residual carrier, 1 for a plain carrier.
+    """
+    noise = detector_noise(power, esn0, **signal_model)
+    n = signal_model.get("samples_per_symbol", 1)
+    return n * power * power / (2.0 * esn0 * noise.density)
 
 
 # --- transient responses of the discrete loop ---------------------------------------------------
@@ -788,18 +1153,20 @@ def jerk_phase_error(design, rate2_hz_per_s2):
     return 2.0 * pi * rate2_hz_per_s2 / design.sample_rate ** 3 / design.g_gains[2]
 
 
-def total_phase_error_variance(design, esn0, rate_hz_per_s):
-    """Linear jitter variance plus squared steady ramp error (rad^2) at linear Es/N0 ``esn0``."""
-    jitter = phase_error_variance(design.power, esn0, design.actual_bt)
+def total_phase_error_variance(design, esn0, rate_hz_per_s, **signal_model):
+    """Linear jitter variance plus squared steady ramp error (rad^2) at linear Es/N0 ``esn0``
+    (``signal_model``: the keyword arguments of :func:`detector_noise`)."""
+    jitter = phase_error_variance(design.power, esn0, design.actual_bt, **signal_model)
     return jitter + design.ramp_phase_error(rate_hz_per_s) ** 2
 
 
-def suggest_noise_bw(sample_rate, power, esn0, rate_hz_per_s, damping=0.707, loop_order=2):
+def suggest_noise_bw(sample_rate, power, esn0, rate_hz_per_s, damping=0.707, loop_order=2, **signal_model):
     """Noise bandwidth B_L (Hz) of a 2nd-order loop that minimises jitter variance plus
     squared steady ramp error for linear Es/N0 ``esn0`` and a frequency ramp in Hz/s.
 
     Only a 2nd-order loop has this trade-off (order 1 cannot track a ramp; order 3 has no
     ramp error). The search runs over exact designs up to ``MAX_BT * sample_rate``.
+    ``signal_model``: the keyword arguments of :func:`detector_noise` (jitter of that signal).
     """
     if loop_order != 2:
         raise ValueError(f"loop_order must be 2 for a bandwidth suggestion, got {loop_order!r}")
@@ -809,7 +1176,10 @@ def suggest_noise_bw(sample_rate, power, esn0, rate_hz_per_s, damping=0.707, loo
         raise ValueError(f"rate_hz_per_s must be a non-zero frequency ramp in Hz/s, got {rate_hz_per_s!r}")
     validate_spec(sample_rate, power, MAX_BT * sample_rate, damping, loop_order)
     # continuous estimate: a B + k / B^4 with a = V_M T / M^2, k = (2 pi rate c^2)^2, c = B_L / wn
-    a = mth_power_noise(power, esn0) / (sample_rate * power * power)
+    if _is_unshaped(power, signal_model):
+        a = mth_power_noise(power, esn0) / (sample_rate * power * power)
+    else:
+        a = 2.0 * detector_noise_density(power, esn0, **signal_model) / (sample_rate * power * power)
     k = (2.0 * pi * rate_hz_per_s * noise_bw_per_wn(damping) ** 2) ** 2
     hi = MAX_BT * sample_rate
     guess = min((4.0 * k / a) ** 0.2, hi)
@@ -817,7 +1187,7 @@ def suggest_noise_bw(sample_rate, power, esn0, rate_hz_per_s, damping=0.707, loo
 
     def cost(log_bw):
         d = design_loop(sample_rate, power, float(np.exp(log_bw)), damping, loop_order)
-        return total_phase_error_variance(d, esn0, rate_hz_per_s)
+        return total_phase_error_variance(d, esn0, rate_hz_per_s, **signal_model)
 
     best = optimize.minimize_scalar(cost, bounds=(lo_log, hi_log), method="bounded",
                                     options={"xatol": 1e-7})

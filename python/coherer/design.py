@@ -533,6 +533,111 @@ def assess_acquisition(design, offset_hz, budget_s=None):
         needed=needed, reason=reason)
 
 
+# --- acquisition with the blocks' spectral aid (acquire=True) ---------------------------------------
+#
+# While the loop's own lock indicator says unlocked, the block estimates the offset from a zero-padded
+# periodogram of z^M at the end of every acquisition block (acquisition.fft_length samples) and steers
+# the NCO there; the estimate error is well inside the lock-in range, so the loop then only settles in
+# phase and the indicator declares lock. The time to lock is therefore a few blocks, not the natural
+# pull-in time, as long as the z^M line stands out of the periodogram's noise.
+
+#: The loops' lock indicator decides over windows of 1/LOCK_WINDOWS_PER_BLOCK of an acquisition block.
+LOCK_WINDOWS_PER_BLOCK = 4
+
+
+@dataclass(frozen=True)
+class SpectralAcquisition:
+    """Predicted acquisition with the blocks' spectral aid; times in s."""
+    fft_length: int             #: samples per acquisition block
+    block_s: float              #: duration of one block
+    detect_probability: float   #: probability that one block's periodogram reports the z^M line
+    expected_blocks: float      #: mean number of blocks until the first report, 1 / detect_probability
+    settle_s: float             #: Rice's phase settling 1.3 / B_L after the NCO is steered
+    decide_s: float             #: two lock-indicator windows: one partly spent settling, one to decide
+    time_to_lock_s: float       #: expected_blocks * block_s + settle_s + decide_s (inf: never)
+    reachable: bool             #: the offset is within the unambiguous range fs/(2M)
+
+
+def line_detect_probability(fft_length, line_snr, line_to_power, p_false=None):
+    """Probability that one block of ``fft_length`` samples reports the z^M line.
+
+    The estimator (:func:`coherer.acquisition.estimate_offset`) accepts its periodogram peak when it
+    exceeds ``ln(n / p_false)`` times the mean bin power, which by Parseval is ``n E|z^M|^2``. The
+    peak bin is ``|n L + nu|^2`` with ``nu`` complex Gaussian of variance ``n S_c`` (S_c the
+    low-frequency density of the complex fluctuation of z^M), so ``2 |.|^2 / (n S_c)`` is
+    noncentral chi-square with 2 degrees of freedom and noncentrality ``2 n L^2 / S_c``
+    (the Marcum-Q detection probability of a tone, e.g. Kay, Fundamentals of Statistical Signal
+    Processing vol. 2, from memory). ``line_snr`` = L^2 / S_c, ``line_to_power`` = L^2 / E|z^M|^2
+    (:class:`DetectorNoise`). Scalloping between the 4x zero-padded bins (at most 0.2 dB) is ignored.
+    """
+    from scipy import stats
+    from . import acquisition
+    p_false = acquisition.P_FALSE_TONE if p_false is None else p_false
+    n = float(fft_length)
+    threshold = np.log(n / p_false)
+    return float(stats.ncx2.sf(2.0 * threshold * line_snr / line_to_power, 2, 2.0 * n * line_snr))
+
+
+def spectral_acquisition(design, offset_hz=0.0, esn0=None, **signal_model):
+    """Acquisition with the blocks' spectral aid (``acquire=True``, the default) for a carrier
+    offset in Hz, at linear Es/N0 ``esn0`` per symbol (``None``: a strong signal, every block
+    reports the line). ``signal_model``: the keyword arguments of :func:`detector_noise`.
+
+    Time to lock = (expected blocks until the line is reported) x block + Rice's 1.3 / B_L phase
+    settling (REFERENCES 2.2) + two lock-indicator windows. The offset itself does not enter, as
+    long as it is within fs/(2M) (otherwise ``inf``: the estimate would be an alias).
+    """
+    from . import acquisition
+    nfft = acquisition.fft_length(design.noise_bw_hz, design.sample_rate)
+    fs = design.sample_rate
+    if esn0 is None:
+        p_detect = 1.0
+    else:
+        noise = detector_noise(design.power, esn0, **signal_model)
+        p_detect = line_detect_probability(nfft, noise.line_snr, noise.line_to_power)
+    reachable = abs(float(offset_hz)) <= unambiguous_range_hz(fs, design.power)
+    blocks = 1.0 / p_detect if p_detect > 0.0 else inf
+    settle = phase_settling_time_rice_s(design.noise_bw_hz)
+    decide = 2.0 * (nfft // LOCK_WINDOWS_PER_BLOCK) / fs
+    total = blocks * nfft / fs + settle + decide if reachable else inf
+    return SpectralAcquisition(nfft, nfft / fs, p_detect, blocks, settle, decide, total, reachable)
+
+
+@dataclass(frozen=True)
+class FrequencyStep:
+    """A sudden carrier frequency step while locked, followed by the loop alone (the spectral
+    aid only works while unlocked); Hz, rad and s."""
+    step_hz: float
+    pull_out_hz: float          #: largest step survived without a cycle slip
+    followed: bool              #: within the pull-out limit: followed without slipping
+    peak_error_rad: float       #: peak phase error of the linearised loop (beyond pi/(2M): slips)
+    settling_s: float           #: phase error back within 2 % of its peak (linear loop)
+    pull_in_s: float            #: beyond pull-out: natural pull-in time for the step; 0 if followed
+    lock_time_s: float          #: pull_in_s + 1.3/B_L beyond pull-out, else settling_s
+
+
+def frequency_step(design, step_hz, responses=None):
+    """How the loop follows a carrier frequency step of ``step_hz`` Hz (see :class:`FrequencyStep`).
+
+    Pull-out limit: Gardner's 1.8 wn (zeta + 1) / M (:func:`pull_out_hz`). Peak error and settling
+    from the linearised discrete loop (:func:`step_responses`; pass ``responses`` to reuse them).
+    Beyond the pull-out limit the loop slips cycles and pulls in naturally: Gardner's pull-in time
+    (:func:`pull_in_time_s`) plus Rice's phase settling; ``inf`` for a first-order loop beyond its
+    hold range.
+    """
+    step = abs(float(step_hz))
+    responses = step_responses(design) if responses is None else responses
+    limit = pull_out_hz(design)
+    followed = step <= limit
+    peak = responses.peak_error_rad_per_hz * step
+    if followed:
+        pull_in, lock_time = 0.0, responses.error_settling_time_s if step > 0.0 else 0.0
+    else:
+        pull_in = pull_in_time_s(design, step)
+        lock_time = pull_in + phase_settling_time_rice_s(design.actual_bt * design.sample_rate)
+    return FrequencyStep(step, limit, followed, peak, responses.error_settling_time_s, pull_in, lock_time)
+
+
 # --- cycle slips and nonlinear jitter (REFERENCES 3 and 5) -------------------------------------
 
 #: Empirical second-order correction: a 2nd-order loop (zeta 0.707) slips about as often as a

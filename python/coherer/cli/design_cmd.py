@@ -3,7 +3,10 @@
 
 Every number comes from :mod:`coherer.design`, the module the blocks use; this
 module only parses arguments, collects the figures, prints or plots them and
-raises :class:`~coherer.cli.UserError` for bad arguments.
+raises :class:`~coherer.cli.UserError` for bad arguments. The signal the loop sees
+(samples per symbol, RRC roll-off and placement, a residual carrier's modulation
+index) enters the jitter, slip and acquisition figures through the keyword
+arguments of :func:`coherer.design.detector_noise`.
 """
 
 import json
@@ -17,12 +20,15 @@ SLIP_WARNING_S = 60.0
 #: B_L T above which the continuous-time theory behind the acquisition and slip predictions
 #: departs from the discrete loop (the textbook gains are 4.5 % off at 0.05, REFERENCES 1.2).
 LARGE_BT = 0.05
+#: Acquisition expected to take more than this many blocks gets a warning.
+SLOW_ACQUISITION_BLOCKS = 3.0
 #: Default pull-in time budget, seconds.
 DEFAULT_PULL_IN_BUDGET_S = 1.0
 
 # command-line option for each validate_spec argument, to name the option in error messages
 _OPTION_OF = {"sample_rate": "--sample-rate", "power": "--power", "noise_bw_hz": "--noise-bw",
-              "damping": "--damping", "loop_order": "--loop-order"}
+              "damping": "--damping", "loop_order": "--loop-order", "samples_per_symbol": "--samples-per-symbol",
+              "rolloff": "--rolloff", "placement": "--placement", "modulation_index": "--modulation-index"}
 
 
 def register(subparsers):
@@ -30,8 +36,8 @@ def register(subparsers):
     p = subparsers.add_parser(
         "design", help="loop gains and predictions (jitter, slips, pull-in, ramp error)",
         description="Design an M-th power carrier loop and predict its behaviour. All frequencies "
-                    "in Hz; the loop updates once per sample, so at one sample per symbol the "
-                    "sample rate is the symbol rate and --esn0 is Es/N0.")
+                    "in Hz; the loop updates once per sample, so the sample rate is the symbol rate "
+                    "times --samples-per-symbol; --esn0 is Es/N0 per symbol.")
     p.add_argument("--sample-rate", type=float, required=True, metavar="HZ",
                    help="loop update rate, samples/s")
     p.add_argument("--power", type=int, required=True, metavar="M",
@@ -43,10 +49,24 @@ def register(subparsers):
                    help=f"damping factor zeta, orders 2 and 3 (0 < Z <= {design.MAX_DAMPING}; default 0.707)")
     p.add_argument("--loop-order", type=int, default=2, metavar="N", help="loop order 1, 2 or 3 (default 2)")
     p.add_argument("--esn0", type=float, metavar="DB",
-                   help="SNR per loop update, dB (Es/N0 at one sample per symbol): enables jitter and slip "
-                        "predictions")
+                   help="Es/N0 per symbol, dB: enables jitter, slip and acquisition-time predictions")
+    p.add_argument("--samples-per-symbol", type=int, default=1, metavar="N",
+                   help=f"samples per symbol of a root-raised-cosine shaped signal, 1..{design.MAX_SAMPLES_PER_SYMBOL} "
+                        "(default 1: one unshaped sample per symbol)")
+    p.add_argument("--rolloff", type=float, default=0.35, metavar="R",
+                   help="roll-off of the root-raised-cosine pulse, 0..1 (default 0.35)")
+    p.add_argument("--placement", choices=design.PLACEMENTS, default=design.PLACEMENT_CHANNEL,
+                   help="where the loop sits: 'channel' (before the matched filter, noise band-limited to the "
+                        "signal's band; default) or 'matched' (after the matched filter)")
+    p.add_argument("--modulation-index", type=float, metavar="RAD",
+                   help=f"residual carrier (--power 1 only): phase-modulation index of bi-phase data, "
+                        f"0..{design.MAX_MODULATION_INDEX} rad; the carrier keeps cos^2 of the power")
     p.add_argument("--offset", type=float, metavar="HZ",
-                   help="carrier frequency offset to acquire, Hz: enables pull-in predictions")
+                   help="carrier frequency offset to acquire, Hz: acquisition time with the blocks' spectral "
+                        "aid (their default) and natural pull-in without it")
+    p.add_argument("--freq-step", type=float, metavar="HZ",
+                   help="sudden carrier frequency step while locked, Hz: whether the loop follows it, peak "
+                        "phase error, and the natural pull-in beyond the pull-out limit")
     p.add_argument("--pull-in-budget", type=float, default=DEFAULT_PULL_IN_BUDGET_S, metavar="S",
                    help="pull-in time the loop may take on its own before an acquisition aid is "
                         f"called for, s (default {DEFAULT_PULL_IN_BUDGET_S:g})")
@@ -67,13 +87,24 @@ def _check_finite(name, value, positive=False):
         raise UserError(f"{name} must be {rule}, got {value!r}")
 
 
+def _option_error(exc):
+    """The ValueError of a design function as a UserError naming the command-line option."""
+    message = str(exc)
+    first = message.split(" ", 1)[0]
+    return UserError(_OPTION_OF.get(first, first) + message[len(first):])
+
+
 def _design_or_user_error(args, noise_bw):
     try:
         return design.design_loop(args.sample_rate, args.power, noise_bw, args.damping, args.loop_order)
     except ValueError as exc:
-        message = str(exc)
-        first = message.split(" ", 1)[0]
-        raise UserError(_OPTION_OF.get(first, first) + message[len(first):]) from None
+        raise _option_error(exc) from None
+
+
+def signal_model(args):
+    """The keyword arguments of :func:`coherer.design.detector_noise` for the parsed arguments."""
+    return dict(samples_per_symbol=args.samples_per_symbol, rolloff=args.rolloff, placement=args.placement,
+                modulation_index=args.modulation_index)
 
 
 def _validate(args):
@@ -81,6 +112,9 @@ def _validate(args):
     _check_finite("--offset", args.offset)
     _check_finite("--doppler-rate", args.doppler_rate)
     _check_finite("--pull-in-budget", args.pull_in_budget, positive=True)
+    _check_finite("--freq-step", args.freq_step)
+    _check_finite("--rolloff", args.rolloff)
+    _check_finite("--modulation-index", args.modulation_index)
     if args.suggest:
         if args.esn0 is None or not args.doppler_rate:
             raise UserError("--suggest needs --esn0 and a non-zero --doppler-rate")
@@ -92,23 +126,28 @@ def _validate(args):
     # the specification itself, with the bandwidth checked only when it is given
     probe_bw = args.noise_bw if args.noise_bw is not None else design.MAX_BT * abs(args.sample_rate or 1.0)
     _design_or_user_error(args, probe_bw)
+    try:
+        design.validate_signal(args.power, **signal_model(args))
+    except ValueError as exc:
+        raise _option_error(exc) from None
 
 
 def predictions(args):
     """All figures for the parsed arguments, as a dict of plain numbers (SI units, rad)."""
     _validate(args)
     esn0 = design.db_to_linear(args.esn0) if args.esn0 is not None else None
+    model = signal_model(args)
     result = {}
     noise_bw = args.noise_bw
     if args.suggest:
         noise_bw = design.suggest_noise_bw(args.sample_rate, args.power, esn0, args.doppler_rate,
-                                           args.damping, args.loop_order)
+                                           args.damping, args.loop_order, **model)
         result["suggested_noise_bw_hz"] = noise_bw
         if args.noise_bw is not None:
             given = _design_or_user_error(args, args.noise_bw)
             result["requested_noise_bw_hz"] = args.noise_bw
             result["requested_total_phase_error_rms_rad"] = math.sqrt(
-                design.total_phase_error_variance(given, esn0, args.doppler_rate))
+                design.total_phase_error_variance(given, esn0, args.doppler_rate, **model))
     d = _design_or_user_error(args, noise_bw)
     steps = design.step_responses(d)
     result.update({
@@ -134,32 +173,54 @@ def predictions(args):
         "freq_step_final_error_rad_per_hz": steps.error_final_rad_per_hz,
         "freq_step_error_settling_time_s": steps.error_settling_time_s,
         "max_doppler_rate_hz_per_s": design.max_trackable_ramp_hz_per_s(d),
+        "samples_per_symbol": args.samples_per_symbol, "symbol_rate_hz": d.sample_rate / args.samples_per_symbol,
+        "rolloff": args.rolloff if args.samples_per_symbol > 1 and args.modulation_index is None else None,
+        "placement": args.placement if args.samples_per_symbol > 1 and args.modulation_index is None else None,
+        "modulation_index_rad": args.modulation_index,
     })
+    if args.modulation_index is not None:
+        result["carrier_share_db"] = 20.0 * math.log10(math.cos(args.modulation_index))
     if esn0 is not None:
-        variance = design.phase_error_variance(d.power, esn0, d.actual_bt)
+        variance = design.phase_error_variance(d.power, esn0, d.actual_bt, **model)
+        noise = design.detector_noise(d.power, esn0, **model)
         result.update({
             "esn0_db": args.esn0,
-            "squaring_loss_db": 10.0 * math.log10(design.squaring_loss(d.power, esn0)),
-            "loop_snr_db": 10.0 * math.log10(design.loop_snr(d.power, esn0, d.actual_bt)),
+            "squaring_loss_db": 10.0 * math.log10(design.squaring_loss(d.power, esn0, **model)),
+            "detector_noise_density": noise.density, "detector_self_noise_density": noise.self_noise,
+            "loop_snr_db": 10.0 * math.log10(design.loop_snr(d.power, esn0, d.actual_bt, **model)),
             "phase_error_rms_rad": math.sqrt(variance),
             "phase_error_rms_tikhonov_rad": math.sqrt(
-                design.nonlinear_phase_error_variance(d.power, esn0, d.actual_bt)),
-            "mean_time_between_slips_s": design.mean_time_between_slips_s(d, esn0),
+                design.nonlinear_phase_error_variance(d.power, esn0, d.actual_bt, **model)),
+            "mean_time_between_slips_s": design.mean_time_between_slips_s(d, esn0, **model),
         })
     if args.offset is not None:
         acq = design.assess_acquisition(d, args.offset, args.pull_in_budget)
+        aided = design.spectral_acquisition(d, args.offset, esn0, **model)
         result.update({
-            "offset_hz": args.offset, "pull_in_time_s": acq.pull_in_s, "pull_in_time_rice_s": acq.pull_in_rice_s,
+            "offset_hz": args.offset,
+            "acquisition_time_s": aided.time_to_lock_s, "acquisition_fft_length": aided.fft_length,
+            "acquisition_block_s": aided.block_s, "acquisition_detect_probability": aided.detect_probability,
+            "acquisition_expected_blocks": aided.expected_blocks,
+            "pull_in_time_s": acq.pull_in_s, "pull_in_time_rice_s": acq.pull_in_rice_s,
             "lock_time_s": acq.lock_time_s, "pull_in_budget_s": acq.budget_s,
             "acquisition_needed": acq.needed, "acquisition_reason": acq.reason,
             "offset_phase_error_rad": d.frequency_step_error(args.offset),
+        })
+    if args.freq_step is not None:
+        step = design.frequency_step(d, args.freq_step, steps)
+        reacquire = design.spectral_acquisition(d, 0.0, esn0, **model)
+        result.update({
+            "freq_step_hz": args.freq_step, "freq_step_followed": step.followed,
+            "freq_step_reacquisition_time_s": reacquire.time_to_lock_s,
+            "freq_step_peak_phase_error_rad": step.peak_error_rad,
+            "freq_step_pull_in_time_s": step.pull_in_s, "freq_step_lock_time_s": step.lock_time_s,
         })
     if args.doppler_rate is not None:
         result["doppler_rate_hz_per_s"] = args.doppler_rate
         result["ramp_phase_error_rad"] = d.ramp_phase_error(args.doppler_rate)
         if esn0 is not None:
             result["total_phase_error_rms_rad"] = math.sqrt(
-                design.total_phase_error_variance(d, esn0, args.doppler_rate))
+                design.total_phase_error_variance(d, esn0, args.doppler_rate, **model))
     result["warnings"] = warnings_for(d, result)
     return d, steps, result
 
@@ -190,7 +251,16 @@ def warnings_for(d, r):
             out.append(f"offset {abs(offset):g} Hz is beyond the unambiguous range fs/(2M) = "
                        f"{r['unambiguous_range_hz']:.6g} Hz: the loop would lock to an alias")
         elif r["acquisition_needed"]:
-            out.append(f"offset {abs(offset):g} Hz: {r['acquisition_reason']}; enable frequency acquisition")
+            out.append(f"offset {abs(offset):g} Hz: {r['acquisition_reason']}; keep frequency acquisition on "
+                       "(acquire=True, the blocks' default)")
+        blocks = r.get("acquisition_expected_blocks")
+        if blocks is not None and abs(offset) <= r["unambiguous_range_hz"] and blocks > SLOW_ACQUISITION_BLOCKS:
+            out.append(f"the z^M line is weak at this Es/N0: each acquisition block finds it with probability "
+                       f"{r['acquisition_detect_probability']:.2g}, so acquisition takes about {blocks:.3g} blocks")
+    if r.get("freq_step_followed") is False:
+        out.append(f"frequency step {abs(r['freq_step_hz']):g} Hz is beyond the pull-out limit "
+                   f"{r['pull_out_hz']:.4g} Hz: the loop slips cycles and pulls in by itself "
+                   "(the spectral aid only acts once the lock indicator says unlocked)")
     return out
 
 
@@ -216,6 +286,28 @@ def _fmt_time(seconds):
     return f"{seconds * 1e6:.4g} us"
 
 
+def _inf(x):
+    """JSON-bound figures keep inf; text shows it as 'never'."""
+    return math.inf if x is None else x
+
+
+def _per_symbol(n):
+    return "1 sample per symbol" if n == 1 else f"{n} samples per symbol"
+
+
+def _signal_text(r):
+    symbol_rate = f"{r['symbol_rate_hz']:g} symbols/s"
+    if r["modulation_index_rad"] is not None:
+        return (f"residual carrier, bi-phase data at index {r['modulation_index_rad']:g} rad (carrier share "
+                f"{r['carrier_share_db']:.2f} dB), {_per_symbol(r['samples_per_symbol'])}, white noise")
+    if r["samples_per_symbol"] == 1:
+        return f"one sample per symbol ({symbol_rate}), white noise"
+    where = {"channel": "before the matched filter (band-limited noise)",
+             "matched": "after the matched filter"}[r["placement"]]
+    return (f"RRC roll-off {r['rolloff']:g} at {r['samples_per_symbol']} samples per symbol ({symbol_rate}), "
+            f"{where}")
+
+
 def _rad(x):
     if math.isinf(x):
         return "unbounded"
@@ -228,6 +320,7 @@ def format_text(r):
     lines = [f"loop: order {order}, M = {r['power']}, sample rate {r['sample_rate_hz']:g} samples/s"
              + (f", damping {r['damping']:g}" if order > 1 else "")]
     row = lines.append
+    row("  signal                               " + _signal_text(r))
     if "suggested_noise_bw_hz" in r:
         row(f"  suggested noise bandwidth B_L        {r['suggested_noise_bw_hz']:.6g} Hz "
             "(minimises jitter variance + squared ramp error)")
@@ -255,8 +348,13 @@ def format_text(r):
     row(f"  closed-loop peaking                  {r['closed_loop_peaking_db']:.3g} dB, -3 dB at "
         f"{r['closed_loop_3db_hz']:.4g} Hz")
     if "esn0_db" in r:
-        row(f"at {r['esn0_db']:g} dB SNR per update:")
-        row(f"  squaring loss                        {r['squaring_loss_db']:.3f} dB")
+        row(f"at Es/N0 {r['esn0_db']:g} dB per symbol:")
+        loss_name = "squaring loss" if r["samples_per_symbol"] == 1 and r["modulation_index_rad"] is None \
+            else "effective squaring loss"
+        row(f"  {loss_name:<37}{r['squaring_loss_db']:.3f} dB")
+        if r["samples_per_symbol"] > 1 and r["modulation_index_rad"] is None and r["power"] > 1:
+            share = r["detector_self_noise_density"] / r["detector_noise_density"]
+            row(f"  pulse self-noise (pattern jitter)    {100.0 * share:.3g} % of the detector noise")
         row(f"  loop SNR (M phi domain)              {r['loop_snr_db']:.3f} dB")
         row(f"  phase-error RMS (linear theory)      {_rad(r['phase_error_rms_rad'])}")
         row(f"  phase-error RMS (Tikhonov model)     {_rad(r['phase_error_rms_tikhonov_rad'])}")
@@ -265,17 +363,33 @@ def format_text(r):
         row(f"  mean time between cycle slips        {_fmt_time(slip)}{note}")
     if "offset_hz" in r:
         row(f"for a carrier offset of {r['offset_hz']:g} Hz:")
+        blocks = r["acquisition_expected_blocks"]
+        detail = (f"{blocks:.3g} x {r['acquisition_fft_length']}-sample blocks + 1.3/B_L + 2 lock windows"
+                  if blocks is not None else "the z^M line never stands out of the noise")
+        row(f"  time to lock with acquisition on     {_fmt_time(_inf(r['acquisition_time_s']))} ({detail}; "
+            "acquire=True, the blocks' default)")
         rice = f"  [Rice's rule: {_fmt_time(r['pull_in_time_rice_s'])}]" if order > 1 else ""
         if order > 1:
-            row(f"  pull-in time (Gardner)               {_fmt_time(r['pull_in_time_s'])}{rice}")
+            row(f"  without acquisition: pull-in time    {_fmt_time(r['pull_in_time_s'])} (Gardner){rice}")
         else:
-            row(f"  pull-in time                         {_fmt_time(r['pull_in_time_s'])} "
+            row(f"  without acquisition: pull-in time    {_fmt_time(r['pull_in_time_s'])} "
                 "(a first-order loop locks within its hold range or never)")
-        row(f"  time to lock (+ 1.3/B_L settling)    {_fmt_time(r['lock_time_s'])}")
+        row(f"  without acquisition: time to lock    {_fmt_time(r['lock_time_s'])} (+ 1.3/B_L settling)")
         verdict = "needed" if r["acquisition_needed"] else "not needed"
         row(f"  frequency acquisition aid            {verdict}: {r['acquisition_reason']}")
         if order == 1 and not math.isinf(r["pull_in_time_s"]):
             row(f"  steady phase error from the offset   {_rad(r['offset_phase_error_rad'])}")
+    if "freq_step_hz" in r:
+        row(f"for a frequency step of {r['freq_step_hz']:g} Hz while locked (the loop alone):")
+        if r["freq_step_followed"]:
+            row(f"  followed without a slip              peak phase error "
+                f"{_rad(r['freq_step_peak_phase_error_rad'])}, settles in {_fmt_time(r['freq_step_lock_time_s'])}")
+        else:
+            row(f"  beyond the pull-out limit            slips cycles; natural pull-in "
+                f"{_fmt_time(r['freq_step_pull_in_time_s'])}, locked again after "
+                f"{_fmt_time(r['freq_step_lock_time_s'])}")
+            row(f"  if the lock indicator drops meanwhile the spectral aid re-acquires in about "
+                f"{_fmt_time(_inf(r['freq_step_reacquisition_time_s']))}")
     if "doppler_rate_hz_per_s" in r:
         row(f"for a Doppler rate of {r['doppler_rate_hz_per_s']:g} Hz/s:")
         row(f"  steady-state phase error             {_rad(abs(r['ramp_phase_error_rad']))}")

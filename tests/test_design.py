@@ -669,3 +669,324 @@ def test_designing_a_loop_leaves_no_busy_threads():
             "c = time.process_time(); time.sleep(0.3); print(time.process_time() - c)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert float(out.stdout) < 0.03
+
+
+# --- real receiver signals: pulse shape, band-limited noise, residual carrier ----------------------
+
+def framework_rrc(sps, rolloff):
+    """RRC taps from GNU Radio's own designer, unit energy (CONVENTIONS 8)."""
+    from gnuradio.filter import firdes
+    taps = np.array(firdes.root_raised_cosine(1.0, sps, 1.0, rolloff, 11 * sps + 1))
+    return taps / np.sqrt(np.sum(taps ** 2))
+
+
+@pytest.mark.parametrize("sps", [2, 4, 8, 64])
+@pytest.mark.parametrize("rolloff", [0.2, 0.35, 1.0])
+def test_rrc_taps_equal_framework_designer(sps, rolloff):
+    # the designer's closed-form RRC (Proakis ch. 9, from memory) against firdes.root_raised_cosine;
+    # firdes returns float32 taps (relative precision 6e-8), so agreement within 1e-6 of the peak
+    ours = design.rrc_taps(sps, rolloff)
+    theirs = framework_rrc(sps, rolloff)
+    assert ours.shape == theirs.shape
+    assert np.max(np.abs(ours - theirs)) <= 1e-6 * np.max(np.abs(theirs))
+
+
+@pytest.mark.parametrize("power", [1, 2, 4, 8])
+@pytest.mark.parametrize("esn0_db", [0.0, 3.0, 6.0, 10.0, 15.0, 20.0])
+def test_unshaped_density_is_v_m(power, esn0_db):
+    # REFERENCES 4 (Lindsey & Simon 1973, from memory; general sum derived): S_e(0) = V_M / 2 at one
+    # sample per symbol, so var = B_L T V_M / M^2 and the squaring loss are unchanged. Pure arithmetic: rel 1e-9.
+    esn0 = design.db_to_linear(esn0_db)
+    v_m = sum(math.comb(power, k) ** 2 * math.factorial(k) * esn0 ** -k for k in range(1, power + 1))
+    assert design.detector_noise_density(power, esn0) == pytest.approx(v_m / 2, rel=1e-9)
+    assert design.effective_squaring_loss(power, esn0) == pytest.approx(power ** 2 / (esn0 * v_m), rel=1e-9)
+    # the general shaped-signal expectation with a one-tap pulse and white noise is the same model
+    terms = design._shaped_statistics(power, 1, np.array([1.0]), np.array([1.0]))
+    density = terms.self_im + sum(a * esn0 ** -k for k, a in enumerate(terms.noise_im, start=1))
+    assert terms.line == pytest.approx(1.0, rel=1e-12)
+    assert density == pytest.approx(v_m / 2, rel=1e-9)
+
+
+@pytest.mark.parametrize("esn0_db, printed", [(10.0, ["0.1", "0.42", "2.4184", "57.01634"]),
+                                              (6.0, ["0.2511886", "1.1309460", "10.178954", "1420.4999"])])
+def test_unshaped_density_handy_values(esn0_db, printed):
+    # REFERENCES 4 handy V_M values (M = 1, 2, 4, 8), printed precision
+    for power, value in zip((1, 2, 4, 8), printed):
+        assert matches_printed(2 * design.detector_noise_density(power, design.db_to_linear(esn0_db)), value)
+
+
+def test_signal_model_defaults_reproduce_todays_predictions():
+    # the keyword defaults (one sample per symbol, no modulation index) keep every prediction bit-identical,
+    # whatever roll-off or placement is passed with them (they only apply to shaped signals)
+    d = design.design_loop(1e4, 4, 20.0, 0.707, 2)
+    esn0 = design.db_to_linear(6.0)
+    extra = dict(samples_per_symbol=1, rolloff=0.8, placement="matched")
+    assert design.phase_error_variance(4, esn0, d.actual_bt, **extra) == \
+        d.actual_bt * design.mth_power_noise(4, esn0) / 16
+    assert design.loop_snr(4, esn0, d.actual_bt, **extra) == design.loop_snr(4, esn0, d.actual_bt)
+    assert design.squaring_loss(4, esn0, **extra) == design.squaring_loss(4, esn0)
+    assert design.mean_time_between_slips_s(d, esn0, **extra) == design.mean_time_between_slips_s(d, esn0)
+    assert design.nonlinear_phase_error_variance(4, esn0, d.actual_bt, **extra) == \
+        design.nonlinear_phase_error_variance(4, esn0, d.actual_bt)
+    assert design.total_phase_error_variance(d, esn0, 50.0, **extra) == design.total_phase_error_variance(d, esn0, 50.0)
+    assert design.suggest_noise_bw(1e4, 4, esn0, 200.0, **extra) == design.suggest_noise_bw(1e4, 4, esn0, 200.0)
+
+
+def enumerate_symbol_statistics(power, sps, pulse, point_angle):
+    """Brute force over every symbol pattern: time-averaged line E[s^M] e^{-jM pa}, the pattern-jitter density
+    sum_tau Cov(Im u_n, Im u_n+tau) and the moments E|s_n|^(2j) of a noise-free shaped M-PSK signal."""
+    lp = len(pulse)
+    c = (lp - 1) // 2
+    span = -(-lp // sps) + 1                      # symbols touching one sample, with margin
+    syms = np.arange(-2 * span, 2 * span + 1)
+    times = np.arange(-(lp - 1), sps + lp - 1)
+    taps = np.array([[pulse[t - i * sps + c] if 0 <= t - i * sps + c < lp else 0.0 for i in syms] for t in times])
+    used = np.nonzero(np.any(taps != 0.0, axis=0))[0]
+    taps = taps[:, used]
+    points = np.exp(1j * (point_angle + 2 * np.pi * np.arange(power) / power))
+    patterns = np.array(np.meshgrid(*[points] * len(used), indexing="ij")).reshape(len(used), -1)
+    s = taps @ patterns                           # (times, patterns)
+    u = s ** power * np.exp(-1j * power * point_angle)
+    rows = slice(lp - 1, lp - 1 + sps)            # n = 0..N-1
+    line = float(np.mean(u[rows].real))
+    im = u.imag - u.imag.mean(axis=1, keepdims=True)
+    cov = im[rows] @ im.T / patterns.shape[1]
+    density = float(np.sum(cov)) / sps
+    moments = [float(np.mean(np.abs(s[rows]) ** (2 * j))) for j in range(power + 1)]
+    return line, density, moments, float(np.sum(np.abs(cov))) / sps      # the last: absolute sum of the terms
+
+
+@pytest.mark.parametrize("power, sps, pulse", [
+    (4, 2, [0.3, 0.7, 1.0, 0.5, -0.2]),
+    (4, 3, [-0.1, 0.4, 0.9, 1.0, 0.6, 0.1, -0.15]),
+    (8, 2, [0.25, 1.0, 0.45]),
+    (2, 2, [0.3, 0.7, 1.0, 0.5, -0.2]),
+])
+def test_shaped_expectation_equals_enumeration(power, sps, pulse):
+    # [derived] exact expectation over symbol patterns (series of power sums) against brute-force enumeration
+    # of every pattern of the symbols that touch the samples (an independent, direct computation).
+    # Both are exact: rel 1e-9. White noise (rho = delta) makes the noise terms sum_k C(M,k)^2 k! v^k
+    # E|s|^(2(M-k)) / 2 (Isserlis for circular Gaussian noise), checked coefficient by coefficient.
+    pulse = np.array(pulse)
+    pa = np.pi / 4 if power == 4 else 0.0
+    scaled = pulse * np.sqrt(sps / np.sum(pulse ** 2))       # the model's unit mean power per sample
+    line, density, moments, scale = enumerate_symbol_statistics(power, sps, scaled, pa)
+    terms = design._shaped_statistics(power, sps, pulse, np.array([1.0]))
+    assert terms.line == pytest.approx(line, rel=1e-9)
+    # the designer forms the density from pair moments of size up to E|s^M|^2 weighted by up to C(M, M/2)^2,
+    # which cancel: float64 round-off of up to ~1e-13 of weight x E|s^M|^2 (thousands of terms of error 1e-16)
+    round_off = 1e-13 * math.comb(power, power // 2) ** 2 * terms.power_self
+    assert terms.self_im == pytest.approx(density, rel=1e-9, abs=round_off)
+    assert round_off < 1e-6 * scale + 1e-6 * abs(terms.noise_im[0])
+    for k, coefficient in enumerate(terms.noise_im, start=1):
+        expected = 0.5 * math.comb(power, k) ** 2 * math.factorial(k) * moments[power - k]
+        assert coefficient == pytest.approx(expected, rel=1e-9)
+    if power == 2:
+        # a real pulse keeps BPSK real: no pattern jitter at all [derived]
+        assert abs(terms.self_im) <= 1e-12 * line ** 2
+
+
+def simulated_detector_density(power, sps, rolloff, esn0_db, placement, seed, n_samples=1 << 22,
+                               segment=1 << 14, bins=16):
+    """Monte Carlo S_e(0) by the averaged periodogram at the lowest non-zero bins, on signals built as
+    CONVENTIONS 8 with the framework's RRC. Returns (estimate, relative standard error)."""
+    rng = np.random.default_rng(seed)
+    taps = framework_rrc(sps, rolloff)
+    pa = np.pi / 4 if power == 4 else 0.0
+    margin = 512
+    n_sym = (n_samples + 2 * margin) // sps
+    symbols = np.exp(1j * (pa + 2 * np.pi * rng.integers(0, power, n_sym) / power))
+    up = np.zeros(n_sym * sps, complex)
+    up[::sps] = symbols * np.sqrt(sps)
+    shaped = np.convolve(up, taps, mode="same")
+    esn0 = design.db_to_linear(esn0_db)
+    white = (rng.standard_normal(len(up)) + 1j * rng.standard_normal(len(up))) * np.sqrt(sps / esn0 / 2)
+    if placement == "channel":      # noise band-limited by the RRC shape at unit gain at zero frequency
+        y = shaped + np.convolve(white, taps / taps.sum(), mode="same")
+    else:                           # signal and white noise through the unit-energy matched filter
+        y = np.convolve(shaped + white, taps, mode="same")
+    u = y[margin:margin + n_samples] ** power * np.exp(-1j * power * pa)
+    e = u.imag / u.real.mean()      # the line estimated from the data, not taken from the designer
+    spectrum = np.abs(np.fft.rfft(e.reshape(-1, segment), axis=1)[:, 1:bins + 1]) ** 2 / segment
+    return float(spectrum.mean()), 1.0 / np.sqrt(spectrum.size)
+
+
+@pytest.mark.parametrize("power, sps, rolloff, esn0_db, placement, seed", [
+    (4, 4, 0.35, 10.0, "channel", 101),     # thermal and pattern jitter together
+    (4, 4, 0.35, 30.0, "matched", 102),     # pattern jitter dominates
+    (8, 4, 0.35, 25.0, "channel", 103),
+    (2, 8, 0.5, 6.0, "matched", 104),
+])
+def test_shaped_density_against_periodogram(power, sps, rolloff, esn0_db, placement, seed):
+    # Independent check of S_e(0) (exact expectation in the designer) by simulation with another method: each
+    # periodogram ordinate at a non-zero bin is asymptotically S(f) chi^2_2 / 2 (exponential), independent across
+    # bins and segments, so the mean of J ordinates has relative standard error 1/sqrt(J) (J = 4096 here, 1.6 %);
+    # tolerance 4 standard errors. The bins reach 1e-3 cycles/sample, where S(f) departs from S(0) by well under
+    # 0.5 % (the autocovariance spans about +-100 lags).
+    estimate, rel_se = simulated_detector_density(power, sps, rolloff, esn0_db, placement, seed)
+    predicted = design.detector_noise_density(power, design.db_to_linear(esn0_db), samples_per_symbol=sps,
+                                              rolloff=rolloff, placement=placement)
+    assert estimate == pytest.approx(predicted, rel=4 * rel_se)
+
+
+@pytest.mark.parametrize("power", [4, 8])
+@pytest.mark.parametrize("placement", ["channel", "matched"])
+def test_pattern_jitter_of_shaped_qpsk_and_8psk(power, placement):
+    # QPSK/8PSK with an RRC pulse have pattern jitter (self-noise) that no SNR removes: Moeneclaey & de Jonghe,
+    # IEEE Trans. Commun. 1994 (from memory) for NDA carrier synchronisers of rotationally symmetric sets.
+    for sps in (2, 4, 8):
+        high = design.detector_noise(power, design.db_to_linear(60.0), samples_per_symbol=sps, placement=placement)
+        assert high.self_noise > 1e-3
+        assert high.density == pytest.approx(high.self_noise, rel=1e-3)     # thermal part gone at 60 dB
+        # the effective squaring loss then keeps falling with SNR instead of tending to 0 dB
+        loss_20 = design.effective_squaring_loss(power, 100.0, samples_per_symbol=sps, placement=placement)
+        loss_30 = design.effective_squaring_loss(power, 1000.0, samples_per_symbol=sps, placement=placement)
+        assert loss_30 < loss_20
+
+
+@pytest.mark.parametrize("placement", ["channel", "matched"])
+def test_bpsk_has_no_pattern_jitter(placement):
+    # [derived] BPSK with a real pulse stays real, so Im(y^2) carries noise only; after a matched filter the
+    # squaring loss at high SNR is small (a fraction of a dB) for every roll-off and oversampling
+    for sps in (2, 4, 8, 16):
+        for rolloff in (0.2, 0.35, 0.5):
+            noise = design.detector_noise(2, 1e6, samples_per_symbol=sps, rolloff=rolloff, placement=placement)
+            assert abs(noise.self_noise) <= 1e-12      # exactly 0 up to round-off (units of L^2 = 1)
+            if placement == "matched":
+                loss = design.effective_squaring_loss(2, 1e6, samples_per_symbol=sps, rolloff=rolloff,
+                                                      placement=placement)
+                assert -0.5 < 10 * np.log10(loss) < 0.0
+
+
+@pytest.mark.parametrize("placement", ["channel", "matched"])
+@pytest.mark.parametrize("sps", [2, 4, 16])
+def test_plain_carrier_variance_does_not_depend_on_oversampling(placement, sps):
+    # REFERENCES 3 (Rice 2009 eq. C.43): var = N0 B_L / P whatever the samples per symbol; with B_L T = B_L T_s / N
+    # and per-sample SNR (Es/N0)/N the product is unchanged. Band-limited noise keeps the density N0 at the carrier.
+    esn0 = design.db_to_linear(10.0)
+    bt_symbol = 0.004
+    variance = design.phase_error_variance(1, esn0, bt_symbol / sps, samples_per_symbol=sps, placement=placement)
+    assert variance == pytest.approx(bt_symbol / esn0, rel=1e-9)
+
+
+@pytest.mark.parametrize("beta", [0.3, 0.8, 1.2, 1.3])
+def test_residual_carrier_closed_form(beta):
+    # REFERENCES 11.1: sigma^2 = N0 B_L / (P cos^2 beta) (Gardner, Phaselock Techniques ch. 5, from memory),
+    # here in physical units: P = 1, fs samples/s, complex noise N0 * fs per sample -> Es/N0 = 1 / (N0 fs)
+    fs, noise_bw, n0 = 1e5, 50.0, 2e-7
+    esn0 = 1.0 / (n0 * fs)
+    closed = n0 * noise_bw / np.cos(beta) ** 2
+    assert design.phase_error_variance(1, esn0, noise_bw / fs, modulation_index=beta) == pytest.approx(closed, rel=1e-9)
+    assert design.effective_squaring_loss(1, esn0, modulation_index=beta) == pytest.approx(np.cos(beta) ** 2, rel=1e-9)
+    # slips (REFERENCES 5, Viterbi 1963, from memory): first-order loop at the loop SNR of the carrier's share
+    d = design.design_loop(fs, 1, noise_bw, loop_order=1)
+    rho = np.cos(beta) ** 2 * esn0 / d.actual_bt
+    viterbi = np.pi ** 2 * rho * special.i0(rho) ** 2 / (2 * d.actual_bt * fs)
+    assert design.mean_time_between_slips_s(d, esn0, modulation_index=beta) == pytest.approx(viterbi, rel=1e-9)
+
+
+def test_residual_carrier_density_against_periodogram():
+    # [derived] bi-phase (Manchester) data has no spectral density at zero frequency: only the noise remains,
+    # S_e(0) = (sigma_n^2 / 2) / cos^2 beta. Simulated as CONVENTIONS 8 (exp(j beta d), d Manchester +-1, two
+    # samples per bit); periodogram tolerance as in test_shaped_density_against_periodogram (4 / sqrt(J)).
+    rng = np.random.default_rng(105)
+    beta, esn0_db, n, segment, bins = 1.2, 3.0, 1 << 22, 1 << 14, 16
+    bits = rng.choice([-1.0, 1.0], n // 2)
+    d = np.repeat(bits, 2) * np.tile([1.0, -1.0], n // 2)
+    esn0 = design.db_to_linear(esn0_db)
+    y = np.exp(1j * beta * d) + (rng.standard_normal(n) + 1j * rng.standard_normal(n)) * np.sqrt(0.5 / esn0)
+    e = y.imag / y.real.mean()
+    spectrum = np.abs(np.fft.rfft(e.reshape(-1, segment), axis=1)[:, 1:bins + 1]) ** 2 / segment
+    predicted = design.detector_noise_density(1, esn0, modulation_index=beta)
+    assert predicted == pytest.approx(0.5 / esn0 / np.cos(beta) ** 2, rel=1e-12)
+    assert spectrum.mean() == pytest.approx(predicted, rel=4 / np.sqrt(spectrum.size))
+
+
+@pytest.mark.parametrize("kwargs, name", [
+    (dict(samples_per_symbol=0), "samples_per_symbol"),
+    (dict(samples_per_symbol=65), "samples_per_symbol"),
+    (dict(samples_per_symbol=2.5), "samples_per_symbol"),
+    (dict(samples_per_symbol=4, rolloff=-0.1), "rolloff"),
+    (dict(samples_per_symbol=4, rolloff=1.5), "rolloff"),
+    (dict(samples_per_symbol=4, placement="after"), "placement"),
+    (dict(modulation_index=1.5), "modulation_index"),
+    (dict(modulation_index=-0.1), "modulation_index"),
+])
+def test_signal_model_rejects_bad_values(kwargs, name):
+    power = 1 if "modulation_index" in kwargs else 4
+    with pytest.raises(ValueError, match=name):
+        design.phase_error_variance(power, 10.0, 0.001, **kwargs)
+    with pytest.raises(ValueError, match=name):
+        design.detector_noise(power, 10.0, **kwargs)
+
+
+def test_modulation_index_needs_power_one_and_esn0_positive():
+    with pytest.raises(ValueError, match="modulation_index"):
+        design.detector_noise(2, 10.0, modulation_index=1.0)
+    with pytest.raises(ValueError, match="esn0"):
+        design.detector_noise(4, 0.0, samples_per_symbol=4)
+
+
+def test_shaped_terms_are_cached():
+    # a pure function of (M, N, roll-off, placement): the second call returns the cached terms
+    first = design._shaped_terms(4, 8, 0.25, "matched")
+    assert design._shaped_terms(4, 8, 0.25, "matched") is first
+
+
+# --- acquisition with the spectral aid, frequency steps ---------------------------------------------------
+
+@pytest.mark.parametrize("power, esn0_db, seed", [(2, -10.4, 201), (4, -0.5, 202)])
+def test_line_detect_probability_against_estimator(power, esn0_db, seed):
+    # The z^M line test of acquisition.estimate_offset (peak > ln(n/p_false) x mean bin) on simulated blocks at an
+    # SNR where one block finds the line about half the time, against the noncentral chi-square (Marcum Q)
+    # prediction (Kay vol. 2, from memory). Binomial standard error over 400 blocks; tolerance 4 standard errors.
+    from gnuradio.coherer import acquisition
+    rng = np.random.default_rng(seed)
+    n, blocks = 4096, 400
+    esn0 = design.db_to_linear(esn0_db)
+    pa = np.pi / 4 if power == 4 else 0.0
+    hits = 0
+    for _ in range(blocks):
+        offset = rng.uniform(-0.4, 0.4) / (2 * power)
+        x = np.exp(1j * (pa + 2 * np.pi * rng.integers(0, power, n) / power) + 2j * np.pi * offset * np.arange(n))
+        x = x + (rng.standard_normal(n) + 1j * rng.standard_normal(n)) * np.sqrt(0.5 / esn0)
+        found = acquisition.estimate_offset(x, power, 1.0)
+        hits += found is not None and abs(found - offset) < 1.0 / (n * power)
+    noise = design.detector_noise(power, esn0)
+    p = design.line_detect_probability(n, noise.line_snr, noise.line_to_power)
+    assert 0.2 < p < 0.8
+    assert hits / blocks == pytest.approx(p, abs=4 * np.sqrt(p * (1 - p) / blocks))
+
+
+def test_spectral_acquisition_time():
+    # README "Wide acquisition": one FFT block (acquisition.fft_length), then the loop settles in phase (Rice's
+    # 1.3 / B_L, REFERENCES 2.2) and the indicator decides over quarter-block windows. A strong signal: 1 block.
+    from gnuradio.coherer import acquisition
+    d = design.design_loop(1.0, 4, 0.001)
+    nfft = acquisition.fft_length(0.001, 1.0)
+    strong = design.spectral_acquisition(d, 0.1, design.db_to_linear(10.0))
+    assert strong.fft_length == nfft and strong.expected_blocks == pytest.approx(1.0, rel=1e-9)
+    assert strong.time_to_lock_s == pytest.approx(nfft + 1.3 / 0.001 + 2 * nfft / 4, rel=1e-12)
+    # far below the natural pull-in time for an offset near the edge of the unambiguous range
+    assert strong.time_to_lock_s < 1e-3 * design.pull_in_time_s(d, 0.1)
+    # a weak line takes 1 / P_d blocks; beyond fs/(2M) the block would acquire an alias
+    weak = design.spectral_acquisition(d, 0.1, design.db_to_linear(-0.5))
+    assert weak.expected_blocks == pytest.approx(1.0 / weak.detect_probability, rel=1e-12)
+    assert weak.time_to_lock_s > strong.time_to_lock_s
+    assert math.isinf(design.spectral_acquisition(d, 0.2, None).time_to_lock_s)
+
+
+def test_frequency_step_followed_or_pulled_in():
+    # Gardner (from memory, REFERENCES 2.2): pull-out 1.8 wn (zeta + 1) / M; beyond it the loop slips and pulls in
+    # naturally in (M dw)^2 / (2 zeta wn^3); within it the linear loop's peak error scales with the step
+    d = design.design_loop(1e4, 2, 20.0)
+    responses = design.step_responses(d)
+    limit = design.pull_out_hz(d)
+    inside = design.frequency_step(d, 0.5 * limit, responses)
+    assert inside.followed and inside.pull_in_s == 0.0
+    assert inside.peak_error_rad == pytest.approx(responses.peak_error_rad_per_hz * 0.5 * limit, rel=1e-12)
+    outside = design.frequency_step(d, -3.0 * limit, responses)
+    assert not outside.followed
+    wn = design.acquisition_wn(d)
+    assert outside.pull_in_s == pytest.approx((2 * np.pi * 2 * 3 * limit) ** 2 / (2 * 0.707 * wn ** 3), rel=1e-12)
+    assert outside.lock_time_s == pytest.approx(outside.pull_in_s + 1.3 / 20.0, rel=1e-9)

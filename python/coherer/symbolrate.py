@@ -16,7 +16,8 @@ The steps
 ---------
 1. A bounded share of the recording: the whole of it up to ``max_samples``
    samples, otherwise ``blocks`` blocks spread evenly over it (their line
-   periodograms are averaged). Non-finite samples become 0, magnitudes are
+   periodograms are averaged; few long blocks, because a line grows with the
+   coherent length, K averaged blocks only lower the threshold by about sqrt(K)). Non-finite samples become 0, magnitudes are
    limited to 10 x the median magnitude (a Gaussian sample exceeds that with
    probability e^{-100 ln 2}), so spikes and gaps cannot dominate.
 2. A filter matched to the spectrum actually measured: the Welch PSD of x minus
@@ -26,6 +27,14 @@ The steps
    line at 8 and more samples per symbol; a signal that is already matched
    filtered only gets a narrower pulse. A floor of 1 % keeps every frequency
    represented, so the statistics stay those of a Gaussian spectrum everywhere.
+   When the noise is already band-limited like the signal (after a matched
+   filter) a second filter only narrows the pulse, so the unfiltered |x|^2 is
+   searched too; each of the two spectra gets half of ``p_false``. Lines are only
+   searched below 0.95 of the occupied bandwidth W (where the signal PSD is above
+   1 % of its peak): a cycle frequency a needs the spectrum to overlap itself
+   shifted by a, so a line above W (a resampler image, an interferer) cannot be
+   the symbol rate. Deterministic spurs of the receive chain inside the band are
+   indistinguishable from a symbol-rate line.
 3. The filtered block is interpolated by 2 (zero padding of its spectrum) before
    squaring: |y|^2 then has its full bandwidth without aliasing, so rates up to
    the sample rate (1.5 samples per symbol) are unambiguous, and at exactly 2

@@ -12,12 +12,15 @@
   flowgraphs are imported (offscreen, never run); the scripted example runs.
 """
 
+import ast
 import inspect
 import logging
 import math
 import os
 import pathlib
 import re
+import shutil
+import statistics
 import subprocess
 import sys
 from math import comb, factorial
@@ -231,13 +234,36 @@ def test_parameter_ids_are_constructor_arguments(path):
     assert sorted(p["id"] for p in data["parameters"]) == sorted(constructor_args(python_class(data)))
 
 
+def rendered_make(block):
+    """The constructor call GRC generates for a block of a validated flowgraph, as an ast.Call."""
+    code = block.templates.render("make")
+    tree = ast.parse(code.strip(), mode="eval")
+    assert isinstance(tree.body, ast.Call), code
+    return code, tree.body
+
+
+def bound_arguments(cls, call):
+    """Constructor argument name -> source text of the expression GRC passes for it."""
+    args = [ast.unparse(a) for a in call.args]
+    kwargs = {k.arg: ast.unparse(k.value) for k in call.keywords}
+    return dict(inspect.signature(cls.__init__).bind(None, *args, **kwargs).arguments)
+
+
 @pytest.mark.parametrize("path", BLOCK_FILES, ids=lambda p: p.name)
-def test_make_template_passes_every_parameter(path):
+def test_make_template_passes_every_parameter(platform_load, path):
+    """Rendered by GRC, the make template is one call of the block's class that passes
+    every YAML parameter to the constructor argument of the same name."""
+    platform, _ = platform_load
     data = load_yaml(path)
-    make = data["templates"]["make"]
-    assert make.lstrip().startswith(f"coherer.{data['id'][len('coherer_'):]}(")
-    for p in data["parameters"]:
-        assert re.search(r"\$\{[^}]*\b" + p["id"] + r"\b", make), p["id"]
+    params = [p["id"] for p in data["parameters"]]
+    _, block = make_flowgraph(platform, data["id"], {"sample_rate": "48000"})
+    _, call = rendered_make(block)
+    assert ast.unparse(call.func) == f"coherer.{data['id'][len('coherer_'):]}"
+    bound = bound_arguments(python_class(data), call)
+    bound.pop("self")
+    assert sorted(bound) == sorted(params)
+    for name, text in bound.items():
+        assert text == block.params[name].to_code(), (name, text)
 
 
 # Runtime setters per block (the design contract); each must be a GRC callback.
@@ -254,7 +280,11 @@ DOC_KEYS = {
     "coherer_mth_power_loop_cc": _LOOP_KEYS,
     "coherer_squaring_loop_cc": _LOOP_KEYS,
     "coherer_lock_detector_cc": [coherer.metadata.CARRIER_LOCK, coherer.metadata.CARRIER_STATUS,
-                                 coherer.metadata.STATUS_PORT],
+                                 coherer.metadata.STATUS_PORT, coherer.metadata.ST_LOCKED,
+                                 coherer.metadata.ST_METRIC, coherer.metadata.ST_ESN0_DB,
+                                 coherer.metadata.ST_SAMPLE, coherer.metadata.ST_WINDOW_START,
+                                 coherer.metadata.ST_TIME_S, coherer.metadata.ST_FREQ_HZ,
+                                 coherer.metadata.RX_TIME, coherer.metadata.CARRIER_FREQ],
     "coherer_mth_power_feedforward_cc": [],
 }
 MESSAGE_PORTS = {
@@ -308,6 +338,136 @@ def test_diagnostic_outputs_shown_only_when_on(platform_load, block_id, diagnost
     assert len([p for p in block.sources if not p.hidden and p.domain == "stream"]) == visible
 
 
+ITEM_SIZE = {"complex": 8, "float": 4}
+
+# Constructor arguments (beyond the defaults) that switch on every stream output a block has.
+ALL_OUTPUTS = {
+    "coherer_mth_power_loop_cc": dict(sample_rate="48000", power="4", noise_bw_hz="50.0", diagnostics="True"),
+    "coherer_squaring_loop_cc": dict(sample_rate="48000", noise_bw_hz="50.0", diagnostics="True"),
+    "coherer_lock_detector_cc": dict(sample_rate="48000", power="4"),
+    "coherer_mth_power_feedforward_cc": dict(sample_rate="48000", power="4", window="64", diagnostics="True"),
+}
+
+
+def _stream_ports(ports):
+    return [p for p in ports if p.get("domain", "stream") == "stream"]
+
+
+@pytest.mark.parametrize("path", BLOCK_FILES, ids=lambda p: p.name)
+def test_stream_ports_match_python_io_signature(path):
+    """With every output switched on, the YAML's stream ports are the Python block's
+    signature: item sizes in order, the required ones (not optional) are the minimum and
+    all of them the maximum. Optional ports only ever follow the required ones."""
+    data = load_yaml(path)
+    block = python_class(data)(**_python_kwargs(data["id"], ALL_OUTPUTS[data["id"]]))
+    for ports, sig in ((_stream_ports(data["inputs"]), block.input_signature()),
+                       (_stream_ports(data["outputs"]), block.output_signature())):
+        required = [p for p in ports if not p.get("optional")]
+        assert ports[:len(required)] == required
+        assert list(sig.sizeof_stream_items())[:len(ports)] == [ITEM_SIZE[p["dtype"]] for p in ports]
+        assert (sig.min_streams(), sig.max_streams()) == (len(required), len(ports))
+
+
+# Output ports after out0 and their labels (the design contract's optional outputs).
+OPTIONAL_OUTPUTS = {
+    "coherer_mth_power_loop_cc": ["ref", "freq Hz", "err rad"],
+    "coherer_squaring_loop_cc": ["ref", "freq Hz", "err rad"],
+    "coherer_lock_detector_cc": ["metric", "Es/N0 dB"],
+    "coherer_mth_power_feedforward_cc": ["ref", "freq Hz", "phase rad"],
+}
+
+
+@pytest.mark.parametrize("path", BLOCK_FILES, ids=lambda p: p.name)
+def test_outputs_after_the_first_are_optional_and_named(path):
+    data = load_yaml(path)
+    outputs = _stream_ports(data["outputs"])
+    assert not outputs[0].get("optional")
+    assert [p["label"] for p in outputs[1:]] == OPTIONAL_OUTPUTS[data["id"]]
+    assert all(p.get("optional") is True for p in outputs[1:])
+
+
+def make_wired_flowgraph(platform, block_id, params, connected):
+    """A validated flowgraph: a null source into ``dut`` and a null sink (of the port's
+    type) on each stream output index in ``connected``."""
+    outputs = _stream_ports(load_yaml(GRC_DIR / f"{block_id}.block.yml")["outputs"])
+    fg = platform.make_flow_graph()
+    sinks = [{"name": f"sink{i}", "id": "blocks_null_sink", "states": {"state": "enabled"},
+              "parameters": {"type": outputs[i]["dtype"], "num_inputs": "1"}} for i in connected]
+    fg.import_data({
+        "options": {"parameters": {"id": "port_probe", "generate_options": "no_gui"}, "states": {}},
+        "blocks": [{"name": "src", "id": "blocks_null_source", "parameters": {"type": "complex"},
+                    "states": {"state": "enabled"}},
+                   {"name": "dut", "id": block_id, "parameters": dict(params), "states": {"state": "enabled"}}]
+                  + sinks,
+        "connections": [["src", "0", "dut", "0"]] + [["dut", str(i), f"sink{i}", "0"] for i in connected],
+        "metadata": {"file_format": 1}})
+    fg.rewrite()
+    fg.validate()
+    return fg, next(b for b in fg.blocks if b.name == "dut")
+
+
+@pytest.mark.parametrize("block_id", list(ALL_OUTPUTS))
+def test_grc_accepts_every_prefix_of_the_outputs(platform_load, block_id):
+    """Connecting out0 plus none, one, ... of the optional outputs (in order) is a valid
+    flowgraph for GRC, as it is for the Python block's signature."""
+    platform, _ = platform_load
+    n = len(OPTIONAL_OUTPUTS[block_id]) + 1
+    for k in range(1, n + 1):
+        fg, _ = make_wired_flowgraph(platform, block_id, ALL_OUTPUTS[block_id], list(range(k)))
+        assert [m for _, m in fg.iter_error_messages()] == [], k
+
+
+def test_grcc_flowgraph_with_output_prefixes_runs(tmp_path, source_shim):
+    """End to end through grcc: a loop with diagnostics on and only ref and freq Hz
+    connected, then a detector with only its metric connected, run on a finite stream;
+    the detector passes every sample and the held metric is a valid lock metric."""
+    data = {
+        "options": {"parameters": {"id": "prefix_ports", "generate_options": "no_gui", "run_options": "run"},
+                    "states": {"state": "enabled"}},
+        "blocks": [
+            {"name": "samp_rate", "id": "variable", "parameters": {"value": "48000"}, "states": {"state": "enabled"}},
+            {"name": "src", "id": "analog_sig_source_x", "states": {"state": "enabled"},
+             "parameters": {"type": "complex", "samp_rate": "samp_rate", "waveform": "analog.GR_COS_WAVE",
+                            "freq": "300", "amp": "1", "offset": "0", "phase": "0"}},
+            {"name": "head", "id": "blocks_head", "parameters": {"type": "complex", "num_items": "50000"},
+             "states": {"state": "enabled"}},
+            {"name": "loop", "id": "coherer_mth_power_loop_cc", "states": {"state": "enabled"},
+             "parameters": {"sample_rate": "samp_rate", "power": "1", "noise_bw_hz": "50", "diagnostics": "True"}},
+            {"name": "detector", "id": "coherer_lock_detector_cc", "states": {"state": "enabled"},
+             "parameters": {"sample_rate": "samp_rate", "power": "1", "window": "1024"}},
+            {"name": "ref_out", "id": "blocks_file_sink", "states": {"state": "enabled"},
+             "parameters": {"type": "complex", "file": repr(str(tmp_path / "ref.c64")), "unbuffered": "False"}},
+            {"name": "freq_out", "id": "blocks_file_sink", "states": {"state": "enabled"},
+             "parameters": {"type": "float", "file": repr(str(tmp_path / "freq.f32")), "unbuffered": "False"}},
+            {"name": "pass_out", "id": "blocks_file_sink", "states": {"state": "enabled"},
+             "parameters": {"type": "complex", "file": repr(str(tmp_path / "pass.c64")), "unbuffered": "False"}},
+            {"name": "metric_out", "id": "blocks_file_sink", "states": {"state": "enabled"},
+             "parameters": {"type": "float", "file": repr(str(tmp_path / "metric.f32")), "unbuffered": "False"}},
+        ],
+        "connections": [["src", "0", "head", "0"], ["head", "0", "loop", "0"], ["loop", "0", "detector", "0"],
+                        ["loop", "1", "ref_out", "0"], ["loop", "2", "freq_out", "0"],
+                        ["detector", "0", "pass_out", "0"], ["detector", "1", "metric_out", "0"]],
+        "metadata": {"file_format": 1},
+    }
+    grc_path = tmp_path / "prefix_ports.grc"
+    grc_path.write_text(yaml.safe_dump(data, sort_keys=False))
+    env = grc_env(GRC_DIR, source_shim, tmp_path)
+    script, _ = compile_grc(grc_path, tmp_path, env)
+    proc = subprocess.run([sys.executable, str(script)], env=env, cwd=str(tmp_path), capture_output=True,
+                          text=True, timeout=RUN_TIMEOUT_S)
+    assert proc.returncode == 0, proc.stdout[-3000:] + proc.stderr[-3000:]
+    ref = np.fromfile(tmp_path / "ref.c64", np.complex64)
+    freq = np.fromfile(tmp_path / "freq.f32", np.float32)
+    passed = np.fromfile(tmp_path / "pass.c64", np.complex64)
+    metric = np.fromfile(tmp_path / "metric.f32", np.float32)
+    assert len(ref) == len(freq) == len(passed) == len(metric) == 50000
+    assert np.allclose(np.abs(ref), 1.0, atol=1e-4)
+    # a noiseless 300 Hz tone with a plain PLL (M = 1): the NCO ends on the tone and the
+    # metric of the last decided windows is 1 (cos of a vanishing phase error)
+    assert abs(float(np.mean(freq[-5000:])) - 300.0) < 1.0
+    assert np.all(np.isnan(metric[:1023])) and np.all(metric[-5000:] > 0.99)
+
+
 # --- every assert rejects a bad value --------------------------------------------------
 
 BASE = {
@@ -321,7 +481,7 @@ BASE = {
         tag_interval="0", diagnostics="False"),
     "coherer_lock_detector_cc": dict(
         sample_rate="48000", power="4", window="1024", lock_threshold="None",
-        unlock_threshold="None", point_angle="None", status_interval="0"),
+        unlock_threshold="None", point_angle="None", status_interval="0", samples_per_symbol="1"),
 }
 
 # (block, assert expression, bad values, accepted edge values). Edge values check that
@@ -360,15 +520,28 @@ ASSERT_CASES = [
      [{"window": "32"}, {"window": "1048576"}]),
     (D, "status_interval == 0 or status_interval >= window", [{"status_interval": "1023"}],
      [{"status_interval": "1024"}]),
-    (D, "lock_threshold is None or 0 < lock_threshold <= 1", [{"lock_threshold": "0"}, {"lock_threshold": "1.5"}],
+    (D, "1 <= samples_per_symbol <= 64", [{"samples_per_symbol": "0"}, {"samples_per_symbol": "65"}],
+     [{"samples_per_symbol": "64"}, {"samples_per_symbol": "1"}]),
+    (D, "window % samples_per_symbol == 0", [{"samples_per_symbol": "3"}, {"window": "1000", "samples_per_symbol": "16"}],
+     [{"samples_per_symbol": "4"}, {"window": "1026", "samples_per_symbol": "3"}]),
+    (D, "samples_per_symbol == 1 or window >= 16 * samples_per_symbol",
+     [{"window": "32", "samples_per_symbol": "4"}, {"window": "960", "samples_per_symbol": "64"}],
+     [{"window": "64", "samples_per_symbol": "4"}, {"window": "32", "samples_per_symbol": "1"}]),
+    (D, "lock_threshold is None or (0 < float(lock_threshold.split(':')[1]) <= 0.5 if isinstance(lock_threshold, str) "
+        "and lock_threshold.startswith('false_lock:') else 0 < lock_threshold <= 1)",
+     [{"lock_threshold": "0"}, {"lock_threshold": "1.5"}, {"lock_threshold": "'false_lock:0.7'"},
+      {"lock_threshold": "'false lock 1e-9'"}],
      [{"lock_threshold": "1.0"}]),
     (D, "unlock_threshold is None or 0 <= unlock_threshold", [{"unlock_threshold": "-0.01"}],
      [{"unlock_threshold": "0.0"}]),
-    # default lock threshold for window 1024: Qinv(1e-6)/sqrt(2048) = 0.10504 (REFERENCES 7.2 rule)
-    (D, "unlock_threshold is None or unlock_threshold <= (4.753424308822899 / (2 * window) ** 0.5 "
-        "if lock_threshold is None else lock_threshold)",
-     [{"lock_threshold": "0.5", "unlock_threshold": "0.6"}, {"unlock_threshold": "0.106"}],
-     [{"lock_threshold": "0.5", "unlock_threshold": "0.5"}, {"unlock_threshold": "0.105"}]),
+    # default lock threshold floor for N symbols per window: Qinv(1e-6)/sqrt(2N) (REFERENCES 7.2 rule),
+    # 0.10504 for N = 1024, 0.21007 for 1024 samples at 4 samples per symbol (N = 256)
+    (D, "unlock_threshold is None or isinstance(lock_threshold, str) or unlock_threshold <= "
+        "(4.753424308822899 / (2 * (window // samples_per_symbol)) ** 0.5 if lock_threshold is None else lock_threshold)",
+     [{"lock_threshold": "0.5", "unlock_threshold": "0.6"}, {"unlock_threshold": "0.106"},
+      {"samples_per_symbol": "4", "unlock_threshold": "0.2101"}],
+     [{"lock_threshold": "0.5", "unlock_threshold": "0.5"}, {"unlock_threshold": "0.105"},
+      {"samples_per_symbol": "4", "unlock_threshold": "0.21"}]),
     (D, "point_angle is None or abs(point_angle) < float('inf')", [{"point_angle": "float('nan')"}],
      [{"point_angle": "0.0"}]),
 ]
@@ -429,6 +602,83 @@ def test_edge_values_accepted_by_grc_and_constructor(platform_load, case):
         _, block = make_flowgraph(platform, block_id, params)
         assert _assertion_messages(block) == [], override
         cls(**_python_kwargs(block_id, params))
+
+
+# --- labels, documentation and the false-lock choice ------------------------------------
+
+# What a dialog label must not look like: code or formulas instead of words.
+FORMULA = re.compile(r"Qinv|sqrt|\*\*|[a-z]_[a-z]|/\s*\(|\(2 ?M\)")
+
+
+@pytest.mark.parametrize("path", BLOCK_FILES, ids=lambda p: p.name)
+def test_labels_are_words_not_formulas(path):
+    data = load_yaml(path)
+    labels = [p["label"] for p in data["parameters"]]
+    labels += [lab for p in data["parameters"] for lab in p.get("option_labels", [])]
+    assert [lab for lab in labels if FORMULA.search(lab)] == []
+
+
+@pytest.mark.parametrize("block_id", [L, S])
+def test_frequency_guess_is_labelled_as_an_offset_from_the_centre(block_id):
+    params = {p["id"]: p for p in load_yaml(GRC_DIR / f"{block_id}.block.yml")["parameters"]}
+    assert params["freq_guess_hz"]["label"] == "Frequency offset guess (Hz from centre)"
+
+
+@pytest.mark.parametrize("path", BLOCK_FILES, ids=lambda p: p.name)
+def test_documentation_describes_every_stream_output(path):
+    data = load_yaml(path)
+    doc = data["documentation"]
+    missing = [p["label"] for p in _stream_ports(data["outputs"])[1:] if f"{p['label']} (" not in doc]
+    assert missing == []
+
+
+def test_lock_documentation_says_where_the_tag_sits():
+    doc = load_yaml(GRC_DIR / f"{D}.block.yml")["documentation"]
+    assert "on the last sample of the window that decided it" in doc
+    assert "window_start + window - 1" in doc
+
+
+def _lock_threshold_choices():
+    param = next(p for p in load_yaml(GRC_DIR / f"{D}.block.yml")["parameters"] if p["id"] == "lock_threshold")
+    return param, dict(zip(param["options"], param["option_labels"]))
+
+
+def test_lock_threshold_is_a_false_lock_probability_choice():
+    param, choices = _lock_threshold_choices()
+    assert "false-lock probability per window" in param["label"]
+    assert param["default"] == "None" and list(choices)[0] == "None" and "1e-6" in choices["None"]
+    assert '"false_lock:1e-9"' in choices and "1e-9" in choices['"false_lock:1e-9"']
+
+
+def _normal_isf(p):
+    """Qinv(p), from the standard library's normal quantile (independent of scipy)."""
+    return statistics.NormalDist().inv_cdf(1.0 - p)
+
+
+@pytest.mark.parametrize("window,sps,choice", [(1024, 1, '"false_lock:1e-9"'), (2048, 4, '"false_lock:1e-9"'),
+                                               (512, 2, "'false_lock:1e-4'")])
+def test_false_lock_choice_gives_the_white_noise_threshold(platform_load, window, sps, choice):
+    """The choice reaches the constructor as the fixed threshold Qinv(P)/sqrt(2N) of the
+    window's N = window / samples_per_symbol symbols (REFERENCES 7.2 rule)."""
+    platform, _ = platform_load
+    params = {**BASE[D], "window": str(window), "samples_per_symbol": str(sps), "lock_threshold": choice}
+    _, block = make_flowgraph(platform, D, params)
+    assert _assertion_messages(block) == []
+    code, call = rendered_make(block)
+    bound = bound_arguments(coherer.lock_detector_cc, call)
+    assert "false_lock:" not in code and bound["samples_per_symbol"] == str(sps)
+    detector = eval(code, {"coherer": coherer})      # noqa: S307 (code GRC generated from fixed strings)
+    p_fa = float(eval(choice).split(":")[1])         # noqa: S307
+    assert detector.lock_threshold() == pytest.approx(_normal_isf(p_fa) / math.sqrt(2 * (window // sps)),
+                                                      rel=1e-6)
+
+
+def test_default_lock_threshold_reaches_the_constructor_as_none(platform_load):
+    platform, _ = platform_load
+    _, block = make_flowgraph(platform, D, BASE[D])
+    _, call = rendered_make(block)
+    bound = bound_arguments(coherer.lock_detector_cc, call)
+    assert bound["lock_threshold"] == "None" and bound["unlock_threshold"] == "None"
 
 
 @pytest.mark.parametrize("block_id", [L, S, D])
@@ -563,7 +813,8 @@ def check_headless_lock_tags(text):
     tags = parse_lock_tags(text)
     assert tags, "no carrier_lock tag printed"
     offset, locked = tags[0]
-    assert locked and offset % SCEN_WINDOW == 0
+    # causal tags: on the last sample of the deciding window (design contract)
+    assert locked and offset % SCEN_WINDOW == SCEN_WINDOW - 1
     # At Es/N0 15 dB the locked metric is ~0.88 against an unlock threshold of
     # Qinv(1e-2)/sqrt(2*1024) = 0.051 (REFERENCES 7.2): no unlock is expected.
     assert [t for t in tags if not t[1]] == []
@@ -571,11 +822,15 @@ def check_headless_lock_tags(text):
 
 def check_headless_status(text):
     status = parse_status_prints(text)
-    # one message per interval sample 0, 25000, ..., 125000 (the last incomplete window, past
-    # 146 * 1024 = 149504, is never released) and one per lock change, merged when they coincide
-    intervals = set(range(0, SCEN_WINDOW * (SCEN_N // SCEN_WINDOW), SCEN_STATUS))
+    # one message at the end of each window holding a multiple of the interval (0, 25000, ...,
+    # 125000; the last incomplete window, past 146 * 1024 = 149504, is never decided) and one
+    # per lock change, merged when they coincide; each placed on its window's last sample
+    decided = SCEN_N // SCEN_WINDOW
+    intervals = {(m // SCEN_WINDOW + 1) * SCEN_WINDOW - 1 for m in range(0, SCEN_N, SCEN_STATUS)
+                 if m // SCEN_WINDOW < decided}
     changes = {offset for offset, _ in parse_lock_tags(text)}
     assert sorted(int(s["sample"]) for s in status) == sorted(intervals | changes)
+    assert all(s["window_start"] == s["sample"] - (SCEN_WINDOW - 1) for s in status)
     first_lock = min(changes)
     after = [s for s in status if s["sample"] >= first_lock]
     assert all(s["locked"] for s in after) and not any(s["locked"] for s in status if s["sample"] < first_lock)

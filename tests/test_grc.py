@@ -7,20 +7,27 @@
   diagnostic outputs appear only when switched on;
 - every YAML assert rejects a bad value in GRC validation, and the block constructor
   rejects the same value (accepts the edge value GRC accepts);
+- the stream ports match the Python blocks' io signatures, optional outputs can be left
+  unconnected in GRC, and the false-lock choice reaches the constructor as a threshold;
 - ``grcc`` compiles every example with only this repository's YAML; the headless
   flowgraph runs and what it printed and wrote is checked; the GUI and hardware
-  flowgraphs are imported (offscreen, never run); the scripted example runs.
+  flowgraphs are imported (offscreen); the Qt GUI example runs on a private Xvfb display,
+  its screen is dumped and checked, and its lock indicator must reach "locked";
+  the scripted example runs.
 """
 
 import ast
 import inspect
+import json
 import logging
 import math
 import os
 import pathlib
 import re
+import select
 import shutil
 import statistics
+import struct
 import subprocess
 import sys
 from math import comb, factorial
@@ -768,6 +775,227 @@ def test_live_example_uses_soapy_source_and_tuning_options(compiled_examples):
                                ["--driver", "hackrf", "--center-freq", "145.9e6"])
     assert options["driver"] == "hackrf" and options["center_freq"] == 145.9e6
     assert {"dev_args", "antenna", "ppm", "power", "hw_rate"} <= set(options)
+
+
+# --- the Qt GUI example, live under Xvfb ------------------------------------------------
+
+GUI_EXAMPLE = EXAMPLES / "qpsk_loop_qt_gui.grc"
+# The GUI scenario (qpsk_loop_qt_gui.grc): QPSK at one sample per symbol, 48 ksps, Es/N0 15 dB,
+# carrier offset 1500 Hz +/- 400 Hz (20 s period), 2nd-order loop B_L = 50 Hz, detector window 1024.
+GUI_ESN0_DB = 15.0
+GUI_SCREEN = (1280, 1024)
+GUI_SETTLE_S = 8.0          # run at least this long (time plots fill every 2.56 s)
+GUI_DEADLINE_S = 60.0
+
+
+def _gui_blocks():
+    data = load_yaml(GUI_EXAMPLE)
+    return {b["name"]: b for b in data["blocks"]}, data["connections"]
+
+
+def _lock_label_texts():
+    """(unlocked, locked) texts of the example's lock label, from its own formatter."""
+    blocks, _ = _gui_blocks()
+    label = next(b for b in blocks.values() if b["id"] == "variable_qtgui_label")
+    formatter = eval(label["parameters"]["formatter"])     # noqa: S307 (the example's own lambda)
+    return formatter(False), formatter(True)
+
+
+def test_gui_lock_indicator_is_driven_by_status_messages():
+    """The lock LED and label show one variable, set only by a Message Pair to Var fed by a
+    PDU Lambda from the detector's status port; nothing polls the detector."""
+    blocks, connections = _gui_blocks()
+    assert not [b for b in blocks.values() if b["id"] == "variable_function_probe"]
+    detector = next(n for n, b in blocks.items() if b["id"] == "coherer_lock_detector_cc")
+    (lam,) = [c[2] for c in connections if c[:2] == [detector, coherer.metadata.STATUS_PORT]]
+    assert blocks[lam]["id"] == "pdu_pdu_lambda" and blocks[lam]["parameters"]["metadict"] == "Raw Message"
+    (setter,) = [c[2] for c in connections if c[:2] == [lam, "pdu"]]
+    assert blocks[setter]["id"] == "blocks_msgpair_to_var"
+    variable = blocks[setter]["parameters"]["target"]
+    assert blocks[variable]["id"] == "variable_qtgui_label"
+    leds = [b for b in blocks.values() if b["id"] == "qtgui_ledindicator"]
+    assert leds and all(b["parameters"]["state"] == variable for b in leds)
+    # the lambda turns a status dict into the (key . locked) pair Message Pair to Var expects
+    import pmt
+    fn = eval(blocks[lam]["parameters"]["fn"], {"pmt": pmt, "coherer": coherer})   # noqa: S307
+    for locked in (False, True):
+        status = coherer.metadata.status_dict(locked, 0.5, 12.0, 2047, 0.1, 1024, 100.0)
+        assert pmt.to_python(pmt.cdr(fn(status))) is locked
+
+
+def test_gui_shows_detector_outputs_and_thresholds():
+    """Metric and Es/N0 come from the detector's stream outputs; the metric plot has two
+    constant lines at the detector's threshold floors; the loop's phase-error output is left
+    unconnected (optional)."""
+    blocks, connections = _gui_blocks()
+    detector = next(n for n, b in blocks.items() if b["id"] == "coherer_lock_detector_cc")
+    loop = next(n for n, b in blocks.items() if b["id"] == "coherer_mth_power_loop_cc")
+    used = {(c[0], c[1]) for c in connections}
+    assert {(detector, "0"), (detector, "1"), (detector, "2"), (loop, "1"), (loop, "2")} <= used
+    assert (loop, "3") not in used
+    lines = [b["parameters"]["const"] for b in blocks.values() if b["id"] == "analog_const_source_x"]
+    assert sorted(lines) == ["threshold_floors[0]", "threshold_floors[1]"]
+    assert blocks["threshold_floors"]["parameters"]["value"] == "coherer.lockstat.default_thresholds(lock_window)"
+    assert blocks[detector]["parameters"]["window"] == "lock_window"
+
+
+def _read_xwd(path):
+    """RGB array (height, width, 3) from an X window dump (XWD version 7, ZPixmap, 24/32 bpp)."""
+    data = pathlib.Path(path).read_bytes()
+    head = struct.unpack(">25I", data[:100])
+    header_size, version, pixmap_format, _, width, height = head[:6]
+    byte_order, bits_per_pixel, bytes_per_line = head[7], head[11], head[12]
+    masks, ncolors = head[14:17], head[19]
+    assert version == 7 and pixmap_format == 2 and bits_per_pixel in (24, 32), head
+    nbytes = bits_per_pixel // 8
+    raw = np.frombuffer(data, np.uint8, count=height * bytes_per_line, offset=header_size + 12 * ncolors)
+    raw = raw.reshape(height, bytes_per_line)[:, :width * nbytes].reshape(height, width, nbytes).astype(np.uint32)
+    order = range(nbytes) if byte_order == 0 else reversed(range(nbytes))    # 0 = LSBFirst
+    pixels = np.zeros((height, width), np.uint32)
+    for shift, i in enumerate(order):
+        pixels |= raw[:, :, i] << (8 * shift)
+    channels = [((pixels & m) >> ((m & -m).bit_length() - 1)).astype(np.uint8) for m in masks]
+    return np.stack(channels, axis=-1)
+
+
+@pytest.fixture(scope="module")
+def xvfb_display(tmp_path_factory):
+    """A private Xvfb server; its display name. Skipped only when Xvfb cannot run here."""
+    missing = [tool for tool in ("Xvfb", "xwd") if shutil.which(tool) is None]
+    if missing:
+        pytest.skip(f"{' and '.join(missing)} not installed (scripts/bootstrap.sh installs the Debian "
+                    f"packages xvfb and x11-apps)")
+    log = tmp_path_factory.mktemp("xvfb") / "xvfb.log"
+    read_fd, write_fd = os.pipe()
+    with open(log, "w") as log_file:
+        server = subprocess.Popen(["Xvfb", "-displayfd", str(write_fd), "-screen", "0",
+                                   f"{GUI_SCREEN[0]}x{GUI_SCREEN[1]}x24", "-nolisten", "tcp"],
+                                  pass_fds=(write_fd,), stdout=log_file, stderr=log_file)
+    os.close(write_fd)
+    number = b""
+    ready, _, _ = select.select([read_fd], [], [], 20.0)
+    if ready:
+        number = os.read(read_fd, 64).strip()
+    os.close(read_fd)
+    if not number:
+        server.kill()
+        server.wait()
+        pytest.skip(f"Xvfb could not start here: {log.read_text()[-500:]}")
+    yield f":{number.decode()}"
+    server.terminate()
+    try:
+        server.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        server.kill()
+        server.wait()
+
+
+# Runs the generated script's own main() with a subclass of its top block that, on the Qt
+# event loop, records the texts of its labels and, once the lock label shows the locked text
+# and the displays have settled (or at the deadline), dumps the screen with xwd and ends the
+# run through main()'s SIGTERM handler.
+GUI_HOOK = """
+import importlib.util, json, os, signal, subprocess, sys, time
+from PyQt5 import Qt
+script, class_name, shot, display, settle, deadline, locked_text = sys.argv[1:8]
+spec = importlib.util.spec_from_file_location("generated_fg", script)
+mod = importlib.util.module_from_spec(spec)
+spec.loader.exec_module(mod)
+base = getattr(mod, class_name)
+
+def label_texts(widget):
+    return sorted({w.text() for w in widget.findChildren(Qt.QLabel)})
+
+class Probed(base):
+    def __init__(self):
+        super().__init__()
+        self._t0 = time.monotonic()
+        self._report = {"texts_before_start": label_texts(self), "seen": []}
+        self._probe = Qt.QTimer()
+        self._probe.timeout.connect(self._check)
+        self._probe.start(200)
+
+    def _check(self):
+        elapsed = time.monotonic() - self._t0
+        texts = label_texts(self)
+        for t in texts:
+            if t not in self._report["seen"]:
+                self._report["seen"].append(t)
+        locked = self.lock_detector.locked()
+        shown = locked_text in texts
+        if "done" in self._report or not ((shown and elapsed >= float(settle)) or elapsed >= float(deadline)):
+            return
+        self._report["done"] = True
+        grab = subprocess.run(["xwd", "-root", "-silent", "-display", display, "-out", shot],
+                              capture_output=True, text=True)
+        self._report.update(texts=texts, elapsed_s=elapsed, xwd_rc=grab.returncode, xwd_err=grab.stderr,
+                            lock_state=self.lock_state, detector_locked=locked,
+                            metric=self.lock_detector.metric(), esn0_db=self.lock_detector.esn0_db(),
+                            detector_thresholds=[self.lock_detector.lock_threshold(),
+                                                 self.lock_detector.unlock_threshold()],
+                            plotted_thresholds=list(self.threshold_floors),
+                            window=[self.width(), self.height()])
+        print("GUI-REPORT " + json.dumps(self._report), flush=True)
+        os.kill(os.getpid(), signal.SIGTERM)
+
+mod.main(top_block_cls=Probed)
+"""
+
+
+@pytest.fixture(scope="module")
+def gui_run(compiled_examples, xvfb_display, tmp_path_factory):
+    """Run the compiled GUI example on the Xvfb display; (report dict, screenshot path)."""
+    results, env, _ = compiled_examples
+    script, _ = results[GUI_EXAMPLE.name]
+    work = tmp_path_factory.mktemp("gui_run")
+    hook = work / "probe_gui.py"
+    hook.write_text(GUI_HOOK)
+    shot = work / "screen.xwd"
+    run_env = dict(env)
+    run_env.update({"DISPLAY": xvfb_display, "QT_QPA_PLATFORM": "xcb", "HOME": str(work),
+                    "XDG_CONFIG_HOME": str(work / "config"), "XDG_RUNTIME_DIR": str(work)})
+    os.chmod(work, 0o700)
+    proc = subprocess.run([sys.executable, str(hook), str(script), flowgraph_id(GUI_EXAMPLE), str(shot),
+                           xvfb_display, str(GUI_SETTLE_S), str(GUI_DEADLINE_S), _lock_label_texts()[1]],
+                          env=run_env, cwd=str(work), capture_output=True, text=True, timeout=RUN_TIMEOUT_S)
+    lines = [ln for ln in proc.stdout.splitlines() if ln.startswith("GUI-REPORT ")]
+    assert proc.returncode == 0 and lines, proc.stdout[-3000:] + proc.stderr[-3000:]
+    return json.loads(lines[-1].split(" ", 1)[1]), shot
+
+
+def test_gui_example_lock_indicator_reaches_locked(gui_run):
+    report, _ = gui_run
+    unlocked_text, locked_text = _lock_label_texts()
+    # the label starts unlocked and turns locked once the status messages say so
+    assert unlocked_text in report["texts_before_start"] and locked_text not in report["texts_before_start"]
+    assert report["detector_locked"] and report["lock_state"] is True, report
+    assert locked_text in report["texts"], report
+
+
+def test_gui_example_values_match_its_scenario(gui_run):
+    report, _ = gui_run
+    # plotted lines are the detector's threshold floors (the same helper, the same window)
+    assert report["plotted_thresholds"] == pytest.approx(report["detector_thresholds"], rel=1e-12)
+    # locked at Es/N0 15 dB: c_4 = 0.88 (lockstat.c_m) well above the lock floor 0.105;
+    # M2M4 over N = 1024: std ~0.2 dB per window (REFERENCES 8), 1 dB is 5 sigma
+    assert report["metric"] > 0.7
+    assert abs(report["esn0_db"] - GUI_ESN0_DB) < 1.0
+
+
+def test_gui_example_screenshot_is_not_blank(gui_run):
+    report, shot = gui_run
+    assert report["xwd_rc"] == 0, report["xwd_err"]
+    image = _read_xwd(shot)
+    assert image.shape == (GUI_SCREEN[1], GUI_SCREEN[0], 3)
+    width, height = report["window"]
+    window = image[:height, :width].reshape(-1, 3)       # no window manager: the window sits at (0, 0)
+    colours, counts = np.unique(window, axis=0, return_counts=True)
+    assert len(colours) >= 64                             # text, plots, widgets: not one flat colour
+    assert counts.max() < 0.8 * len(window)
+    # both constellations drew points: pure blue ("before") and pure red ("after") pixels
+    def pixels(rgb):
+        return int(np.all(window == rgb, axis=1).sum())
+    assert pixels((0, 0, 255)) > 500 and pixels((255, 0, 0)) > 500
 
 
 # The headless scenario (qpsk_doppler_headless.grc): QPSK, M = 4, 1.5 s at 100 ksps,

@@ -152,6 +152,16 @@ def test_help_names_units(coherer):
     (["--sample-rate", 1e4, "--power", 2, "--noise-bw", 10, "--esn0", "nan"], "--esn0"),
     (["--sample-rate", 1e4, "--power", 2, "--noise-bw", 10, "--suggest"], "--suggest"),
     (["--sample-rate", 1e4, "--power", 2, "--noise-bw", 10, "--plot", "/nonexistent-dir/x.png"], "--plot"),
+    (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--modulation-index", 1.0], "--modulation-index"),
+    (["--sample-rate", 1e4, "--power", 1, "--noise-bw", 10, "--modulation-index", 1.5], "--modulation-index"),
+    (["--sample-rate", 1e4, "--power", 1, "--noise-bw", 10, "--modulation-index", "nan"], "--modulation-index"),
+    (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--samples-per-symbol", 0], "--samples-per-symbol"),
+    (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--samples-per-symbol", 65], "--samples-per-symbol"),
+    (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--samples-per-symbol", 2.5], "--samples-per-symbol"),
+    (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--rolloff", 1.5], "--rolloff"),
+    (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--rolloff", "nan"], "--rolloff"),
+    (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--placement", "after"], "--placement"),
+    (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--freq-step", "inf"], "--freq-step"),
 ])
 def test_bad_arguments_exit_2_with_one_line(coherer, args, fragment):
     proc = coherer(*args)
@@ -159,3 +169,85 @@ def test_bad_arguments_exit_2_with_one_line(coherer, args, fragment):
     lines = proc.stderr.strip().splitlines()
     assert len(lines) == 1 and fragment in lines[0], proc.stderr
     assert "Traceback" not in proc.stderr
+
+
+def test_shaped_signal_options(coherer):
+    # RRC-shaped QPSK at 4 samples per symbol before the matched filter: the figures are the design module's
+    # for that signal model (exact expectation over symbol patterns and noise; tests/test_design.py checks it
+    # against simulation), and the text names the signal
+    args = ["--sample-rate", 1e5, "--power", 4, "--noise-bw", 50, "--esn0", 10, "--samples-per-symbol", 4,
+            "--rolloff", 0.35]
+    r = run_json(coherer, *args)
+    d = design.design_loop(1e5, 4, 50.0)
+    model = dict(samples_per_symbol=4, rolloff=0.35, placement="channel")
+    esn0 = design.db_to_linear(10.0)
+    assert (r["samples_per_symbol"], r["rolloff"], r["placement"]) == (4, 0.35, "channel")
+    assert r["symbol_rate_hz"] == 25000.0
+    assert r["phase_error_rms_rad"] == math.sqrt(design.phase_error_variance(4, esn0, d.actual_bt, **model))
+    assert r["detector_noise_density"] == design.detector_noise_density(4, esn0, **model)
+    assert r["mean_time_between_slips_s"] == design.mean_time_between_slips_s(d, esn0, **model)
+    # var = 2 B_L T S_e(0) / M^2 of the line-normalised detector
+    assert r["phase_error_rms_rad"] ** 2 == pytest.approx(2 * 50 / 1e5 * r["detector_noise_density"] / 16, rel=1e-12)
+    # pattern jitter makes the loss worse than the one-sample-per-symbol squaring loss (REFERENCES 4: -1.794 dB)
+    assert 0.0 < r["detector_self_noise_density"] < r["detector_noise_density"]
+    assert r["squaring_loss_db"] < -1.794
+    text = coherer(*args, "--placement", "matched").stdout
+    for fragment in ("RRC roll-off 0.35 at 4 samples per symbol", "after the matched filter",
+                     "effective squaring loss", "pattern jitter"):
+        assert fragment in text
+    matched = run_json(coherer, *args, "--placement", "matched")
+    assert matched["detector_noise_density"] == design.detector_noise_density(
+        4, esn0, samples_per_symbol=4, rolloff=0.35, placement="matched")
+
+
+def test_residual_carrier_option(coherer):
+    # REFERENCES 11.1 (Gardner, from memory): var = N0 B_L / (P cos^2 beta); at one sample per T_s with complex
+    # noise variance 1/(Es/N0) per sample that is B_L T / (Es/N0 cos^2 beta); the carrier share is the loss
+    r = run_json(coherer, "--sample-rate", 1e5, "--power", 1, "--noise-bw", 50, "--esn0", 10,
+                 "--modulation-index", 1.2, "--loop-order", 1)
+    assert r["modulation_index_rad"] == 1.2
+    assert r["carrier_share_db"] == pytest.approx(20 * math.log10(math.cos(1.2)), rel=1e-12)
+    assert r["squaring_loss_db"] == pytest.approx(r["carrier_share_db"], rel=1e-9)
+    actual_bt = r["actual_bt"]
+    assert r["phase_error_rms_rad"] ** 2 == pytest.approx(actual_bt / 10.0 / math.cos(1.2) ** 2, rel=1e-9)
+    # Viterbi's slip time (REFERENCES 5) at the loop SNR of the carrier's share
+    rho = math.cos(1.2) ** 2 * 10.0 / actual_bt
+    assert 10 ** (r["loop_snr_db"] / 10) == pytest.approx(rho, rel=1e-9)
+    text = coherer("--sample-rate", 1e5, "--power", 1, "--noise-bw", 50, "--modulation-index", 1.2).stdout
+    assert "residual carrier" in text and "carrier share" in text
+
+
+def test_offset_shown_with_acquisition_on(coherer):
+    # the blocks' default acquire=True: the offset is estimated from the z^M spectrum every FFT block while
+    # unlocked, so the time to lock is a few blocks (README "Wide acquisition"), not the natural pull-in time
+    args = ["--sample-rate", 1e5, "--power", 4, "--noise-bw", 50, "--esn0", 10, "--offset", 3000]
+    r = run_json(coherer, *args)
+    d = design.design_loop(1e5, 4, 50.0)
+    aided = design.spectral_acquisition(d, 3000.0, design.db_to_linear(10.0))
+    assert r["acquisition_time_s"] == aided.time_to_lock_s
+    assert r["acquisition_fft_length"] == aided.fft_length
+    assert r["acquisition_expected_blocks"] == pytest.approx(1.0, rel=1e-9)       # a strong z^M line
+    assert r["acquisition_time_s"] < 1e-3 * r["pull_in_time_s"]                   # Gardner: hours here
+    text = coherer(*args).stdout
+    assert "time to lock with acquisition on" in text and "without acquisition: pull-in time" in text
+    # a weak line: the expected number of blocks grows and a warning says so
+    weak = run_json(coherer, "--sample-rate", 1e5, "--power", 4, "--noise-bw", 50, "--esn0", -3, "--offset", 3000)
+    assert weak["acquisition_expected_blocks"] > 3
+    assert any("acquisition takes about" in w for w in weak["warnings"])
+
+
+def test_freq_step_option(coherer):
+    # Gardner's pull-out limit 1.8 wn (zeta + 1) / M (from memory): within it the loop follows the step,
+    # beyond it the loop slips and pulls in by itself
+    base = ["--sample-rate", 1e4, "--power", 2, "--noise-bw", 20]
+    limit = run_json(coherer, *base)["pull_out_hz"]
+    inside = run_json(coherer, *base, "--freq-step", 0.5 * limit)
+    assert inside["freq_step_followed"] is True and inside["warnings"] == []
+    assert inside["freq_step_peak_phase_error_rad"] == pytest.approx(
+        0.5 * limit * inside["freq_step_peak_error_rad_per_hz"], rel=1e-12)
+    outside = run_json(coherer, *base, "--freq-step", 3 * limit)
+    d = design.design_loop(1e4, 2, 20.0)
+    assert outside["freq_step_followed"] is False
+    assert outside["freq_step_pull_in_time_s"] == design.pull_in_time_s(d, 3 * limit)
+    assert any("pull-out" in w for w in outside["warnings"])
+    assert "beyond the pull-out limit" in coherer(*base, "--freq-step", 3 * limit).stdout

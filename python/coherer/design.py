@@ -30,6 +30,31 @@ These textbook mappings make the discrete loop's *actual* noise bandwidth
 B_L T = 0.01 and +9 % at 0.1 for order 2). With ``exact=True`` (what the blocks
 use) the design bandwidth is refined numerically so that the actual noise
 bandwidth of the discrete loop equals the requested one to 1e-9.
+
+Predictions and their sources ("from memory" where the text was not at hand):
+
+* Jitter. The loops normalise the detector by the M-th power line L itself, so
+  ``e = Im(y^M e^{-jM pa}) / L`` has slope M per rad for any signal, and the linear loop gives
+  ``var(phi) = 2 (B_L T) S_e(0) / M^2`` with S_e(0) the detector noise's low-frequency density
+  (the loop as a linear filter of detector noise: Gardner, Phaselock Techniques, from memory).
+  One sample per symbol in white noise: ``S_e(0) = V_M / 2`` and ``var = B_L T V_M / M^2``, the
+  squaring-loss result (Lindsey & Simon, Telecommunication Systems Engineering 1973, from memory;
+  general sum derived, REFERENCES 4). RRC-shaped M-PSK at N samples per symbol, before or after a
+  matched filter: S_e(0) by exact expectation over symbol patterns and circular Gaussian noise
+  (:func:`detector_noise`; derived here, checked against enumeration and simulation in the
+  tests), which includes the pulse's self-noise or pattern jitter (the context: Moeneclaey &
+  de Jonghe, IEEE Trans. Commun. 1994, NDA synchronisation of rotationally symmetric
+  constellations, from memory). Residual carrier (M = 1, bi-phase data at index beta):
+  ``var = N0 B_L / (P cos^2 beta)`` (Gardner, from memory; REFERENCES 11.1).
+* Nonlinear jitter: Tikhonov density of the first-order loop (Viterbi 1963/1966, from memory).
+* Cycle slips: Viterbi's first-order mean time at the psi-domain loop SNR ``1/(2 B_L T S_e(0))``
+  (REFERENCES 5), lowered by 1 dB for orders 2 and 3 (empirical).
+* Acquisition: with the blocks' spectral aid (:func:`spectral_acquisition`) a few FFT blocks,
+  the number from the detection probability of the z^M line in one block's periodogram
+  (noncentral chi-square, Kay vol. 2, from memory); without it Gardner's pull-in time
+  ``(M dw)^2 / (2 zeta wn^3)`` with Rice's ``4 (M df)^2 / B_L^3`` beside it (REFERENCES 2.2);
+  frequency steps while locked: Gardner's pull-out limit ``1.8 wn (zeta + 1) / M``.
+* Ramp and jerk errors: exact final values of the discrete loop (REFERENCES 2.1).
 """
 
 from dataclasses import dataclass
@@ -1317,4 +1342,9 @@ __all__ = [
     "SETTLING_BAND", "RESPONSE_TIME_CONSTANTS", "RESPONSE_POINTS", "FAST_WINDOW_BT", "response_length", "StepMetrics",
     "step_metrics", "StepResponses", "step_responses", "closed_loop_magnitude_db", "closed_loop_peaking_db",
     "closed_loop_3db_hz", "jerk_phase_error", "total_phase_error_variance", "suggest_noise_bw",
+    "PLACEMENT_CHANNEL", "PLACEMENT_MATCHED", "PLACEMENTS", "MAX_SAMPLES_PER_SYMBOL", "MAX_MODULATION_INDEX",
+    "RRC_SPAN_SYMBOLS", "EXP_SERIES_MAX_POWER", "validate_signal", "rrc_taps", "noise_variance_per_sample",
+    "DetectorNoise", "detector_noise", "detector_noise_density", "effective_squaring_loss",
+    "LOCK_WINDOWS_PER_BLOCK", "SpectralAcquisition", "line_detect_probability", "spectral_acquisition",
+    "FrequencyStep", "frequency_step",
 ]

@@ -30,6 +30,7 @@ import statistics
 import struct
 import subprocess
 import sys
+import time
 from math import comb, factorial
 
 import numpy as np
@@ -747,6 +748,17 @@ def test_grcc_used_only_repository_yaml(compiled_examples, path):
     assert [d for d in dirs if d != str(GRC_DIR) and coherer_yaml_in(d)] == []
 
 
+@pytest.mark.parametrize("path", EXAMPLE_GRC, ids=lambda p: p.name)
+def test_example_connects_a_prefix_of_each_coherer_blocks_outputs(path):
+    """GNU Radio refuses a block whose connected outputs skip an index (GRC does not check
+    this), so the optional outputs of our blocks must be connected in order."""
+    data = load_yaml(path)
+    ours = {b["name"] for b in data["blocks"] if b["id"].startswith("coherer_")}
+    for name in ours:
+        used = sorted({int(c[1]) for c in data["connections"] if c[0] == name and c[1].isdigit()})
+        assert used == list(range(len(used))), (name, used)
+
+
 def _generate_option(path):
     return load_yaml(path)["options"]["parameters"]["generate_options"]
 
@@ -872,12 +884,19 @@ def xvfb_display(tmp_path_factory):
                                    f"{GUI_SCREEN[0]}x{GUI_SCREEN[1]}x24", "-nolisten", "tcp"],
                                   pass_fds=(write_fd,), stdout=log_file, stderr=log_file)
     os.close(write_fd)
+    # Xvfb writes the number, then a newline, once it accepts clients; read both before
+    # closing the pipe (closing after the number alone makes Xvfb fail on the newline)
     number = b""
-    ready, _, _ = select.select([read_fd], [], [], 20.0)
-    if ready:
-        number = os.read(read_fd, 64).strip()
+    deadline = time.monotonic() + 20.0
+    while not number.endswith(b"\n") and time.monotonic() < deadline:
+        ready, _, _ = select.select([read_fd], [], [], max(0.0, deadline - time.monotonic()))
+        chunk = os.read(read_fd, 64) if ready else b""
+        if not chunk:
+            break
+        number += chunk
     os.close(read_fd)
-    if not number:
+    number = number.strip() if number.endswith(b"\n") else b""
+    if not number or server.poll() is not None:
         server.kill()
         server.wait()
         pytest.skip(f"Xvfb could not start here: {log.read_text()[-500:]}")

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from scipy import integrate, stats
+from scipy import integrate, special, stats
 
 from gnuradio.coherer import lockstat as L
 
@@ -146,76 +146,82 @@ def test_m2m4_edges():
 
 # --- kernels ------------------------------------------------------------------------
 
-def _reference_windows(x, power, point_angle, window):
-    """Obvious numpy implementation of the per-window sums (complete windows only)."""
+def _reference_windows(x, power, point_angle, window, sps=1):
+    """Obvious numpy implementation of the per-window, per-phase sums (complete windows only):
+    arrays (windows, sps) of in-phase and quadrature projection, |y|^2, |y|^4, valid count."""
     k = len(x) // window
-    z = x[:k * window].astype(np.complex128).reshape(k, window)
+    z = x[:k * window].astype(np.complex128).reshape(k, window // sps, sps)
     p = np.abs(z) ** 2
     ok = np.isfinite(p) & (p > 0)
     with np.errstate(invalid="ignore"):
-        proj = np.where(ok, np.cos(power * (np.angle(z) - point_angle)), 0.0)
-    return proj.sum(1), np.where(ok, p, 0).sum(1), np.where(ok, p * p, 0).sum(1), ok.sum(1)
+        ang = power * (np.angle(z) - point_angle)
+        proj = np.where(ok, np.cos(ang), 0.0)
+        quad = np.where(ok, np.sin(ang), 0.0)
+    return (proj.sum(1), quad.sum(1), np.where(ok, p, 0).sum(1), np.where(ok, p * p, 0).sum(1),
+            ok.sum(1))
 
 
-def _kernel_windows(x, power, point_angle, window, splits=()):
-    """window_sums over ``x`` split at the given sample offsets (window boundaries)."""
+def _kernel_windows(x, power, point_angle, window, splits=(), sps=1):
+    """window_sums over ``x`` split at the given sample offsets (window boundaries);
+    returns the five fields as (windows, sps) arrays."""
     rot = np.exp(-1j * power * point_angle)
-    out = [[] for _ in range(4)]
+    rows = []
     for chunk in np.split(x, list(splits)):
-        bufs = [np.empty(len(chunk) // window + 1) for _ in range(4)]
-        k = L.window_sums(chunk, power, rot.real, rot.imag, window, *bufs)
+        sums = np.empty((len(chunk) // window + 1, sps, L.SUM_FIELDS))
+        k = L.window_sums(chunk, power, rot.real, rot.imag, window, sps, sums)
         assert k == len(chunk) // window
-        for o, b in zip(out, bufs):
-            o.extend(b[:k])
-    return [np.array(o) for o in out]
+        rows.append(sums[:k])
+    sums = np.concatenate(rows)
+    return [sums[:, :, f] for f in range(L.SUM_FIELDS)]
 
 
+@pytest.mark.parametrize("sps", [1, 4])
 @pytest.mark.parametrize("power,point_angle", [(1, 0.3), (2, 0.0), (4, np.pi / 4), (8, 0.0), (5, -1.0)])
-def test_window_sums_match_reference(power, point_angle):
+def test_window_sums_match_reference(power, point_angle, sps):
     rng = np.random.default_rng(power)
     x = (rng.standard_normal(5000) + 1j * rng.standard_normal(5000)).astype(np.complex64) * 3.0
     x[[10, 200, 4000]] = [np.nan, np.inf, 0.0]
-    proj, m2, m4, valid = _kernel_windows(x, power, point_angle, 64)
-    ref = _reference_windows(x, power, point_angle, 64)
-    assert len(proj) == 5000 // 64                 # the trailing partial window is not used
-    np.testing.assert_allclose(proj, ref[0], rtol=1e-9, atol=1e-9)
-    np.testing.assert_allclose(m2, ref[1], rtol=1e-9)
-    np.testing.assert_allclose(m4, ref[2], rtol=1e-9)
-    np.testing.assert_array_equal(valid, ref[3])
+    got = _kernel_windows(x, power, point_angle, 64, sps=sps)
+    ref = _reference_windows(x, power, point_angle, 64, sps)
+    assert got[0].shape == (5000 // 64, sps)      # the trailing partial window is not used
+    for g, r in zip(got, ref):
+        np.testing.assert_allclose(g, r, rtol=1e-9, atol=1e-9)
 
 
 @settings(max_examples=40, deadline=None)
-@given(st.lists(st.integers(0, 30), max_size=6), st.integers(0, 7), st.sampled_from([1, 2, 4, 8, 3]))
-def test_window_sums_depend_only_on_the_window(cuts, shift, power):
-    # The block passes whole windows; the SIMD sums must then be bit-identical whatever
-    # the split into calls (cuts at window boundaries) and the memory alignment of the
-    # call's buffer (shift by 0..7 samples), so decisions never depend on chunking.
+@given(st.lists(st.integers(0, 30), max_size=6), st.integers(0, 7), st.sampled_from([1, 2, 4, 8, 3]),
+       st.sampled_from([1, 4]))
+def test_window_sums_depend_only_on_the_window(cuts, shift, power, sps):
+    # The SIMD sums must be bit-identical whatever the split into calls (cuts at window
+    # boundaries) and the memory alignment of the buffer (shift by 0..7 samples), so
+    # decisions never depend on chunking.
     rng = np.random.default_rng(7)
     window = 100
     x = (rng.standard_normal(3000) + 1j * rng.standard_normal(3000)).astype(np.complex64)
     x[[5, 1234]] = [np.nan, 0.0]
-    whole = _kernel_windows(x, power, np.pi / 4, window)
+    whole = _kernel_windows(x, power, np.pi / 4, window, sps=sps)
     buffer = np.empty(len(x) + 8, np.complex64)
     moved = buffer[shift:shift + len(x)]
     moved[:] = x
-    split = _kernel_windows(moved, power, np.pi / 4, window, sorted(window * c for c in cuts))
+    split = _kernel_windows(moved, power, np.pi / 4, window, sorted(window * c for c in cuts), sps=sps)
     for a, b in zip(whole, split):
         np.testing.assert_array_equal(a, b)
 
 
 @pytest.mark.parametrize("power", [1, 2, 4, 8])
 def test_noise_only_statistic_variance(power):
-    # REFERENCES 7.2: on noise the window mean P has mean 0 and variance exactly 1/(2N), any M.
-    # 20000 windows: the sample variance has relative standard error sqrt(2/K) = 1 %; 4 s.e. -> 4 %.
-    # The mean's standard error is sqrt(1/(2N)/K); 4 s.e. bound.
+    # REFERENCES 7.2: on white noise the window mean P has mean 0 and variance exactly 1/(2N),
+    # any M; the quadrature mean Q the same. 20000 windows: the sample variance has relative
+    # standard error sqrt(2/K) = 1 %; 4 s.e. -> 4 %. The mean's standard error is
+    # sqrt(1/(2N)/K); 4 s.e. bound.
     rng = np.random.default_rng(100 + power)
     window, k = 64, 20000
     x = rng.standard_normal(2 * window * k, dtype=np.float32).view(np.complex64)
-    proj, _, _, _ = _kernel_windows(x, power, 0.0, window)
-    p = proj / window
-    assert len(p) == k
-    assert abs(p.mean()) < 4 * np.sqrt(1 / (2 * window) / k)
-    assert p.var() * 2 * window == pytest.approx(1.0, abs=4 * np.sqrt(2 / k))
+    proj, quad, _, _, _ = _kernel_windows(x, power, 0.0, window)
+    for s in (proj[:, 0] / window, quad[:, 0] / window):
+        assert len(s) == k
+        assert abs(s.mean()) < 4 * np.sqrt(1 / (2 * window) / k)
+        assert s.var() * 2 * window == pytest.approx(1.0, abs=4 * np.sqrt(2 / k))
 
 
 def test_unit_projection():
@@ -228,27 +234,106 @@ def test_unit_projection():
     assert not ok and v == 0.0
 
 
-def _reference_hysteresis(metric, lock, unlock, state):
-    out = []
-    for m in metric:
-        state = (m >= unlock) if state else (m >= lock)
-        out.append(state)
+# --- the shared lock rule -----------------------------------------------------------
+
+def _median_rule_exceedance(c, k):
+    """P(I >= c sqrt(m)), I ~ N(0,1), m the ((k+1)//2)-th smallest of k chi-square(1) values:
+    by Monte Carlo-free numerical integration over the order statistic in its own variable
+    x (density k!/((j-1)!(k-j)!) F^(j-1) (1-F)^(k-j) f), a different route from the table's
+    integral over u = F(x) (scipy.stats and scipy.integrate as the oracles)."""
+    j = (k + 1) // 2
+    coef = np.exp(special.gammaln(k + 1) - special.gammaln(j) - special.gammaln(k - j + 1))
+    def f(x):
+        F = stats.chi2.cdf(x, 1)
+        return (stats.norm.sf(c * np.sqrt(x)) * coef * F ** (j - 1) * (1 - F) ** (k - j)
+                * stats.chi2.pdf(x, 1))
+    # chi-square(1) mass beyond x = 80 is 2e-19, far below the 1e-4 relative check
+    return integrate.quad(f, 0, 80.0, limit=400, epsabs=0, epsrel=1e-9, points=[1e-9, 1e-4, 1.0])[0]
+
+
+def test_threshold_table():
+    # t[0] = Qinv(P_FA)/sqrt(2N) (REFERENCES 7.2); t[1] = tan(pi (1/2 - P_FA)): I/|Q| is then a
+    # ratio of two standard normals, Cauchy distributed (a textbook result, from memory);
+    # other entries re-derived by integration over the order statistic (see above).
+    t = L.threshold_table(256, 1e-6)
+    assert len(t) == L.REFERENCE_WINDOWS + 1
+    assert t[0] == pytest.approx(stats.norm.isf(1e-6) / np.sqrt(512), rel=1e-12)
+    for p in L.NOISE_REFERENCED_P_FA:
+        assert L.threshold_table(256, p)[1] == pytest.approx(np.tan(np.pi * (0.5 - p)), rel=1e-8)
+    for p, k in ((1e-6, 9), (1e-2, 40), (1e-1, L.REFERENCE_WINDOWS)):
+        c = L.threshold_table(256, p)[k]
+        assert _median_rule_exceedance(c, k) == pytest.approx(p, rel=1e-4)
+    fixed = L.threshold_table(256, 1e-6, 0.3)
+    assert fixed[0] == 0.3 and not fixed[1:].any()
+    with pytest.raises(ValueError, match="p_fa"):
+        L.threshold_table(256, 1e-3)
+
+
+def test_median_rule_false_alarm_monte_carlo():
+    # Independent check of one tabulated factor by simulation: k = 16 windows, P_FA 1e-2;
+    # 400000 trials, binomial standard error 1.6e-4, band 4 s.e.
+    rng = np.random.default_rng(17)
+    k, n = 16, 400_000
+    c = L.threshold_table(64, 1e-2)[k]
+    m = np.sort(rng.standard_normal((n, k)) ** 2, axis=1)[:, (k + 1) // 2 - 1]
+    rate = np.mean(rng.standard_normal(n) >= c * np.sqrt(m))
+    assert rate == pytest.approx(1e-2, abs=4 * np.sqrt(1e-2 * 0.99 / n))
+
+
+def _reference_rule(metrics, quads, lock_table, unlock_table, state):
+    """Plain-Python form of the documented rule: threshold max(t[0], t[k] sqrt(lower median of
+    the squared Q of the last k windows, this one included)), k = min(windows seen, K)."""
+    out, history = [], []
+    for m, q in zip(metrics, quads):
+        history = (history + [q * q])[-L.REFERENCE_WINDOWS:]
+        k = len(history)
+        scale = np.sqrt(sorted(history)[(k + 1) // 2 - 1])
+        if state:
+            state = m >= max(unlock_table[0], unlock_table[k] * scale)
+        else:
+            state = m >= max(lock_table[0], lock_table[k] * scale)
+        out.append(bool(state))
     return out
 
 
 @settings(max_examples=60, deadline=None)
-@given(st.lists(st.floats(-0.2, 1.0), max_size=40), st.floats(0.0, 0.5), st.floats(0.0, 0.5), st.booleans())
-def test_hysteresis_matches_reference(metric, a, b, start):
-    lock, unlock = max(a, b), min(a, b)
-    m = np.array(metric, dtype=np.float64)
-    out = np.empty(len(m), np.bool_)
-    final = L.hysteresis(m, lock, unlock, start, out)
-    ref = _reference_hysteresis(metric, lock, unlock, start)
-    assert list(out) == ref
-    assert final == (ref[-1] if ref else start)
+@given(st.lists(st.tuples(st.floats(-0.2, 1.0), st.floats(-0.3, 0.3)), max_size=120),
+       st.booleans(), st.booleans())
+def test_update_lock_matches_reference(windows, start, fixed):
+    lock = L.threshold_table(64, 1e-2, 0.4 if fixed else None)
+    unlock = L.threshold_table(64, 1e-1, 0.2 if fixed else None)
+    ref = L.new_noise_reference()
+    state, got = start, []
+    for m, q in windows:
+        state = L.update_lock(state, m, q, ref, lock, unlock)
+        got.append(bool(state))
+    assert got == _reference_rule([m for m, _ in windows], [q for _, q in windows], lock, unlock, start)
 
 
-def test_hysteresis_nan_unlocks():
-    out = np.empty(3, np.bool_)
-    L.hysteresis(np.array([0.9, np.nan, np.nan]), 0.5, 0.2, False, out)
-    assert list(out) == [True, False, False]
+def test_update_lock_nan_unlocks():
+    t_on, t_off = L.threshold_table(64, 1e-3, 0.5), L.threshold_table(64, 1e-3, 0.2)
+    ref = L.new_noise_reference()
+    states = [L.update_lock(s, m, 0.0, ref, t_on, t_off) for s, m in ((False, 0.9), (True, np.nan))]
+    assert states == [True, False]
+
+
+def _band_limited_noise(rng, n, taps):
+    w = (rng.standard_normal(n + len(taps)) + 1j * rng.standard_normal(n + len(taps)))
+    return np.convolve(w, taps, mode="valid")[:n].astype(np.complex64)
+
+
+@pytest.mark.parametrize("power", [2, 4])
+def test_noise_reference_scales_with_the_noise_spectrum(power):
+    # REFERENCES 11.3-11.4: on band-limited noise the window mean of cos(M arg y) has a
+    # variance (1/(2N)) sum_tau rho_M(tau) > 1/(2N) [derived], and the quadrature mean has the
+    # same distribution. Low-pass noise (scipy.signal.firwin, cut-off 1/16 of the rate):
+    # var(P) is well above 1/(2N), and var(Q) matches var(P) within sampling error
+    # (4000 windows: relative s.e. of a variance sqrt(2/K) = 2.2 %; two of them: 3.2 %; 4 s.e.).
+    from scipy import signal
+    rng = np.random.default_rng(300 + power)
+    window, k = 256, 4000
+    x = _band_limited_noise(rng, window * k, signal.firwin(129, 1 / 16))
+    proj, quad, _, _, _ = _kernel_windows(x, power, 0.0, window)
+    vp, vq = np.var(proj[:, 0] / window), np.var(quad[:, 0] / window)
+    assert vp * 2 * window > 3.0                    # the white-noise variance would be badly wrong
+    assert vq / vp == pytest.approx(1.0, abs=4 * np.sqrt(2 * 2 / k))

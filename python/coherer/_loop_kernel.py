@@ -14,18 +14,27 @@ Per sample n (x = input, theta^ = NCO phase, rad; v = NCO step, rad/sample)::
     acc2  += K3 e ; acc1 += K2 e + acc2 ; v = K1 e + acc1
     theta^ += v                                        (used from the next sample on)
 
-``A_M = S^(M/2)`` where ``S`` is the M2M4 estimate of the signal power
+``A_M`` is the M-th power line: the component of d that drives the loop.
+While the loop's own lock indicator says locked, ``A_M = |<d>|``, the
+bias-corrected exponential average of d itself (over about
+``2 / LINE_ALPHA`` samples, restarted when lock is declared and at a level
+step), used once it stands 8 standard errors out of its own noise. Circular
+noise adds nothing to the mean of d, so this is unbiased at any SNR, and it is
+exactly the slope of the detector whatever the signal's shape: a pulse-shaped
+(oversampled, non-constant-envelope) PSK signal, or a residual carrier that
+shares its power with data (line = cos(index) of the total). The loop's
+actual noise bandwidth is then the designed one. While acquiring (no lock
+yet), ``A_M = S^(M/2)`` with ``S`` the M2M4 estimate of the signal power
 (``S = sqrt(2 M2^2 - M4)``, Pauluzzi & Beaulieu 2000) from exponentially
 averaged moments of |x|^2 and |x|^4, floored so that the gain boost
-``(M2/S)^(M/2)`` stays bounded. The loop stays open (the NCO coasts) for the
-first few hundred samples, until the moments have settled. The detector
-output is clipped so that one sample never moves the NCO phase by more than
-pi/M (half the M-domain ambiguity). The clip sits at about
-1.7 sqrt(rho_psi / (B_L T)) standard deviations of the detector noise
-(rho_psi the loop SNR of REFERENCES 5): more than 10 for rho_psi >= 2 and
-B_L T <= 0.05, so it only acts on start-up transients and outliers. Normalising
-by the signal part (not total power) keeps the detector gain at exactly M and
-hence the loop noise bandwidth at its design value for any amplitude and SNR.
+``(M2/S)^(M/2)`` stays bounded; it is exact for a constant envelope and within
+a few tens of per cent otherwise, which is all acquisition needs. The loop
+stays open (the NCO coasts) for the first few hundred samples, until the
+moments have settled. The detector output is clipped so that one sample never
+moves the NCO phase by more than pi/M (half the M-domain ambiguity). The clip
+sits at about 1.7 sqrt(rho_psi / (B_L T)) standard deviations of the detector
+noise (rho_psi the loop SNR of REFERENCES 5): more than 10 for rho_psi >= 2
+and B_L T <= 0.05, so it only acts on start-up transients and outliers.
 
 Robustness: a non-finite or exactly zero sample is a gap; the NCO coasts
 (theta^ += acc1), nothing else changes, and the output is 0. A sample whose
@@ -38,9 +47,10 @@ hundred samples later instead of after the whole averaging length.
 
 Lock indicator (internal, drives acquisition): the phase-only statistic
 ``mean cos(M arg y - M point_angle)`` over windows of ``lock_window`` samples
-counted from the start of the stream; on noise it has mean 0 and variance
-1/(2N) for every M (REFERENCES 7.2), so ``threshold = z / sqrt(N)`` with
-``z = Qinv(P_FA)/sqrt(2)`` gives an exact false-lock probability.
+counted from the start of the stream, decided by the same rule as the lock
+detector (``coherer.lockstat.update_lock``: a threshold referenced to the
+measured quadrature projection, so the false-lock probability holds on
+band-limited noise too).
 
 Cycle slips: a slip is a step of 2*pi/M in the NCO phase relative to the
 carrier. Two trackers watch for it, and the loop SNR 1/(B_L T V_M) estimated from
@@ -89,6 +99,7 @@ import numpy as np
 from numba import njit
 
 from ._numeric import half_power, pair_power
+from .lockstat import update_lock
 
 # state[] layout -------------------------------------------------------------------
 S_PHASE = 0      # theta^, rad, wrapped to [-pi, pi)
@@ -129,7 +140,13 @@ S_NORM_LEFT = 34 # samples until the detector normalisation is recomputed
 S_INV_RMS = 35   # 1/sqrt(M2) in use, 1/amplitude
 S_INV_NORM = 36  # 1/(S/M2)^(M/2) in use
 S_CAP = 37       # limiter threshold in use, power units (0: no moments yet)
-STATE_SIZE = 38
+S_LOCK_Q = 38    # lock statistic: running sum of the quadrature projection in this window
+S_LINE_RE = 39   # exponential average of the detector d: the M-th power line (M-domain phasor)
+S_LINE_IM = 40
+S_LINE_W = 41    # its weight since the last restart (bias correction)
+S_LINE_P = 42    # exponential average of |d|^2 (the line estimate's noise scale)
+S_LINE_ON = 43   # 1.0 while the detector is normalised by the line estimate
+STATE_SIZE = 44
 
 # params[] layout ------------------------------------------------------------------
 P_K1 = 0
@@ -142,20 +159,19 @@ P_FMAX = 6
 P_ALPHA = 7      # moment averaging coefficient (1 / averaging length)
 P_STEP_IN_FREQ = 8   # 1.0: report the whole NCO step as frequency (1st order), else 0.0
 P_LOCK_WINDOW = 9    # lock-indicator window, samples
-P_LOCK_Z_ON = 10     # lock when statistic >= z_on / sqrt(N)
-P_LOCK_Z_OFF = 11    # unlock when statistic < z_off / sqrt(N)
-P_REF_G1 = 12        # slip reference tracker gains (3rd order, unit detector gain)
-P_REF_G2 = 13
-P_REF_G3 = 14
-P_SIG2_FLOOR = 15    # floor of (S/M2)^2: caps the detector-gain boost at low SNR
-P_START_MW = 16      # the loop closes once the moment weight reaches this (start-up)
-P_E_MAX = 17         # clip of the normalised detector output: K1 e_max = pi / M
-P_REF_STAGE_G = 18   # 3 gains per settling stage of the slip reference (REF_STAGES stages)
+P_REF_G1 = 10        # slip reference tracker gains (3rd order, unit detector gain)
+P_REF_G2 = 11
+P_REF_G3 = 12
+P_SIG2_FLOOR = 13    # floor of (S/M2)^2: caps the detector-gain boost at low SNR
+P_START_MW = 14      # the loop closes once the moment weight reaches this (start-up)
+P_E_MAX = 15         # clip of the normalised detector output: K1 e_max = pi / M
+P_REF_STAGE_G = 16   # 3 gains per settling stage of the slip reference (REF_STAGES stages)
 REF_STAGES = 3
 P_LP_BETA = P_REF_STAGE_G + 3 * REF_STAGES    # low-pass coefficient of the detector phasor
 P_LP_DECIM = P_LP_BETA + 1                    # its angle is unwrapped every this many samples
 P_BT = P_LP_DECIM + 1                         # B_L T of the loop (for the loop-SNR estimate)
-PARAMS_SIZE = P_BT + 1
+P_LINE_ALPHA = P_BT + 1                       # averaging coefficient of the line estimate
+PARAMS_SIZE = P_LINE_ALPHA + 1
 
 LIMIT = 100.0                      # sample power limit relative to M2 (+20 dB)
 FAST_ALPHA = 1.0 / 64.0            # averaging coefficient of the level-step detector
@@ -171,6 +187,7 @@ REF_STAGE_END = (2.0, 6.0, 14.0)
 STRONG_LOOP_SNR = 10.0            # loop SNR 1/(B_L T V_M) above which the detector angle decides
 ANGLE_DEPARTURE = 1.5 * np.pi      # detector-angle departure (M domain) that is a slip
 LP_NOISE_FLOOR = 4.0               # |low-passed phasor|^2 must exceed this * beta: 4 noise std
+LINE_SIGNIFICANCE = 64.0           # the line estimate is used once it stands 8 standard errors out
 
 
 def new_state():
@@ -212,7 +229,8 @@ def _rotate(q_re, q_im, v):
 
 @njit(nogil=True, cache=True, fastmath={'contract'}, error_model='numpy')
 def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count, lock_at, lock_to,
-                   stop_first, stop_every, state, params, power):
+                   lock_freq, stop_first, stop_every, state, params, lock_ref, on_table, off_table,
+                   power):
     """Run the loop over ``x`` (complex64), writing the corrected samples to ``out``.
 
     ``ref``, ``freq``, ``err`` are the diagnostic outputs (reference phasor,
@@ -223,8 +241,10 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     relative to ``x``) and ``slip_count`` (signed, units of 2*pi/M); both must
     hold ``len(x)`` entries. Changes of the lock indicator are written to
     ``lock_at`` (index relative to ``x`` of the window end that decided, i.e. the
-    first sample after the window) and ``lock_to`` (1 locked, 0 not); both must
-    hold ``len(x) // lock_window + 1`` entries.
+    first sample after the window), ``lock_to`` (1 locked, 0 not) and ``lock_freq``
+    (the NCO frequency then, rad/sample); each must hold ``len(x) // lock_window + 1``
+    entries. The lock decision is :func:`coherer.lockstat.update_lock` with the noise
+    reference ``lock_ref`` and the threshold tables ``on_table``, ``off_table``.
 
     If ``stop_every > 0`` the kernel returns early at the first window end
     ``b = stop_first + k * stop_every`` (``b`` >= 1, relative to ``x``) after
@@ -243,8 +263,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     alpha = params[P_ALPHA]
     step_in_freq = params[P_STEP_IN_FREQ]
     lock_window = params[P_LOCK_WINDOW]
-    z_on = params[P_LOCK_Z_ON]
-    z_off = params[P_LOCK_Z_OFF]
+    line_alpha = params[P_LINE_ALPHA]
+    line_var_k = line_alpha / (2.0 - line_alpha)   # variance of an average / per-sample variance
     slow_g1 = params[P_REF_G1]
     slow_g2 = params[P_REF_G2]
     slow_g3 = params[P_REF_G3]
@@ -268,6 +288,12 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     gaps = state[S_GAPS]
     last_step = state[S_LAST_STEP]
     lock_sum = state[S_LOCK_SUM]
+    lock_q = state[S_LOCK_Q]
+    line_re = state[S_LINE_RE]
+    line_im = state[S_LINE_IM]
+    line_w = state[S_LINE_W]
+    line_p = state[S_LINE_P]
+    line_on = state[S_LINE_ON]
     lock_n = state[S_LOCK_N]
     lock_pos = state[S_LOCK_POS]
     locked = state[S_LOCKED]
@@ -365,6 +391,10 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                     m4 = 0.0
                     mw = 0.0
                     norm_left = 0.0
+                    line_re = 0.0
+                    line_im = 0.0
+                    line_w = 0.0
+                    line_p = 0.0
             else:
                 fast_m2 = p
             # M2M4 moments; detector on the power-normalised sample
@@ -373,18 +403,29 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             mw += alpha * (1.0 - mw)
             if norm_left <= 0.0 or mw < MW_SETTLED:
                 mm2 = m2 / mw
-                sig2 = 2.0 - (m4 / mw) / (mm2 * mm2)   # (S / M2)^2 from M2M4
-                if sig2 < sig2_floor:
-                    sig2 = sig2_floor
                 inv_rms = 1.0 / np.sqrt(mm2)
-                inv_norm = 1.0 / half_power(np.sqrt(sig2), power)   # 1 / (S/M2)^(M/2)
                 cap = LIMIT * mm2
                 norm_left = NORM_BLOCK
+                # detector gain: the M-th power line itself while locked and clearly measured
+                # (bias-corrected average of d; its variance from the average of |d|^2)
+                line_on = 0.0
+                if locked > 0.0 and line_w > 0.0:
+                    lm2 = (line_re * line_re + line_im * line_im) / (line_w * line_w)
+                    spread = (line_p / line_w) * line_var_k * (1.0 - (1.0 - line_w) ** 2) / (line_w * line_w)
+                    if lm2 > LINE_SIGNIFICANCE * spread:
+                        inv_norm = 1.0 / np.sqrt(lm2)
+                        line_on = 1.0
+                if line_on == 0.0:
+                    # acquiring: the M2M4 estimate of the signal power, (S/M2)^(M/2)
+                    sig2 = 2.0 - (m4 / mw) / (mm2 * mm2)   # (S / M2)^2 from M2M4
+                    if sig2 < sig2_floor:
+                        sig2 = sig2_floor
+                    inv_norm = 1.0 / half_power(np.sqrt(sig2), power)
             # detector d = (y_lim/sqrt(M2))^M e^{-j M point_angle} = z conj(P^M)
             g = scale * inv_rms
             z = complex(*pair_power(xr * g, xi * g, power)) * rot
             d = complex(z.real * pm_re + z.imag * pm_im, z.imag * pm_re - z.real * pm_im)
-            e = d.imag * inv_norm                # / (S/M2)^(M/2): mean sin(M phi)
+            e = d.imag * inv_norm                # / line: mean sin(M phi)
             if mw < start_mw:
                 e = 0.0                          # start-up: moments not settled yet, coast
             elif e > e_max:
@@ -408,10 +449,15 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             phase += last_step
             # lock statistic: cos(M arg y) = Re(d)/|d|
             mag = half_power(p * inv_rms * inv_rms, power)   # |d| = (p/M2)^(M/2)
+            line_re += line_alpha * (d.real - line_re)
+            line_im += line_alpha * (d.imag - line_im)
+            line_w += line_alpha * (1.0 - line_w)
+            line_p += line_alpha * (mag * mag - line_p)
             if mag > 0.0:
                 inv_mag = 1.0 / mag
                 ur = d.real * inv_mag
                 lock_sum += ur
+                lock_q += d.imag * inv_mag
                 lock_n += 1.0
                 lp_re += lp_beta * (ur - lp_re)
                 lp_im += lp_beta * (d.imag * inv_mag - lp_im)
@@ -496,14 +542,20 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             prev_step = mean_step
             win_steps = 0.0
             if lock_n >= 0.5 * lock_window:
-                metric = lock_sum / lock_n
-                root_n = np.sqrt(lock_n)
+                metric = lock_sum / lock_window
+                now = update_lock(locked > 0.0, metric, lock_q / lock_window, lock_ref,
+                                  on_table, off_table)
                 if locked > 0.0:
-                    locked = 1.0 if metric * root_n >= z_off else 0.0
-                elif metric * root_n >= z_on:
+                    locked = 1.0 if now else 0.0
+                elif now:
                     # lock declared: the loop sits at a stable point; start the slip
-                    # reference on the NCO's mean frequency and rate over the last windows
+                    # reference on the NCO's mean frequency and rate over the last windows,
+                    # and measure the M-th power line afresh (it rotated while unlocked)
                     locked = 1.0
+                    line_re = 0.0
+                    line_im = 0.0
+                    line_w = 0.0
+                    line_p = 0.0
                     ref_r = 0.0
                     ref_f = mean_step + 0.5 * lock_window * slope
                     ref_a = acc2 if k3 > 0.0 else slope    # a 3rd-order loop knows the rate
@@ -511,8 +563,10 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             if locked != was_locked:
                 lock_at[n_locks] = n + 1
                 lock_to[n_locks] = 1 if locked > 0.0 else 0
+                lock_freq[n_locks] = acc1 + step_in_freq * last_step
                 n_locks += 1
             lock_sum = 0.0
+            lock_q = 0.0
             lock_n = 0.0
             lock_pos = 0.0
             if mw >= MW_SETTLED:      # keep the last verdict while the moments restart
@@ -535,6 +589,12 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_GAPS] = gaps
     state[S_LAST_STEP] = last_step
     state[S_LOCK_SUM] = lock_sum
+    state[S_LOCK_Q] = lock_q
+    state[S_LINE_RE] = line_re
+    state[S_LINE_IM] = line_im
+    state[S_LINE_W] = line_w
+    state[S_LINE_P] = line_p
+    state[S_LINE_ON] = line_on
     state[S_LOCK_N] = lock_n
     state[S_LOCK_POS] = lock_pos
     state[S_LOCKED] = locked

@@ -19,9 +19,44 @@ against the reference. Its theory (REFERENCES 7.1-7.2):
   the threshold exceeded with probability P_FA is
   ``gamma = Qinv(P_FA) / sqrt(2N)``.
 
-Default thresholds (:func:`default_thresholds`): lock at ``P_FA = 1e-6`` per
-window, release at ``P_FA = 1e-2`` per window (a noise-only window keeps a lock
-with probability at most 1e-2).
+Why the threshold is referenced to the measured noise. ``1/(2N)`` holds only
+when successive samples are independent. A real receiver's noise is band-limited
+(matched filter, channel filter, oversampling), so successive phases are
+correlated and the window mean of N samples has a larger variance,
+``(1/(2N)) sum_tau rho_M(tau)``: a threshold set for white noise then declares
+false locks far more often than stated (1e-3 to 1e-2 per window instead of 1e-6
+at 4-8 samples per symbol). The quadrature projection
+``Q = (1/N) sum sin(M (arg y - point_angle))`` has on noise alone the same
+distribution as P whatever the noise spectrum (arg y is uniform and the noise is
+circular), so the rms of Q over the last K windows measures the null scale of P
+on the noise actually present. The scale used is the lower median of the
+squared Q of the last K windows rather than their mean, so that the windows of
+a strong signal still rotating against the reference (a loop pulling in),
+whose Q is large, cannot hold the threshold up for K windows after lock: they
+are outvoted as soon as they are a minority. With the Gaussian approximation
+of the window means, the factor c_k with ``P(P >= c_k scale) = P_FA`` for k
+windows follows from the distribution of that order statistic by numerical
+integration (``coherer._lock_factors``). The lock threshold is
+``max(Qinv(P_FA)/sqrt(2N), c_k scale)`` (:func:`update_lock`): the white-noise
+value is a floor, the second term takes over on coloured noise. Referencing a
+detection threshold to the measured noise is constant-false-alarm practice
+(radar and satellite-navigation lock detectors; common practice). Locked, Q
+carries only the phase jitter and is small, which only lowers the threshold
+toward the white-noise floor. K = REFERENCE_WINDOWS = 96 windows (c_96 at 1e-6
+puts the threshold at 5.65 noise standard deviations, 19 % above the Gaussian
+4.75 for white noise); with fewer windows seen the factor for their number is
+used, so a noise-only start cannot declare lock early.
+
+Default thresholds (:func:`default_thresholds`, the white-noise floors): lock at
+``P_FA = 1e-6`` per window, release at ``P_FA = 1e-2`` per window (a noise-only
+window keeps a lock with probability at most 1e-2).
+
+Oversampled input. With ``sps`` samples per symbol the statistics are taken on
+the symbol-spaced samples of one timing phase: the phase of largest mean power,
+averaged over windows (the most open eye after a matched filter, where the
+samples are ISI-free and their noise white, since the raised-cosine pulse is
+Nyquist). Metric, thresholds (N = symbols per window), detection probability
+and Es/N0 are then those of the symbols.
 
 Es/N0 uses the M2M4 moment estimator (Pauluzzi & Beaulieu 2000, complex
 constant-modulus signal in complex AWGN)::
@@ -43,8 +78,10 @@ API
 ``m2m4_esn0(m2, m4)``, ``esn0_db(esn0)`` (element-wise; their scalar numba
 forms ``m2m4_esn0_scalar``, ``esn0_db_scalar`` can be called from kernels);
 numba kernels ``unit_projection`` (one sample, for use inside other kernels),
-``window_sums`` (sums of whole windows, SIMD), ``hysteresis`` and
-``decide_windows`` (metric, Es/N0 and decisions of completed windows).
+``window_sums`` (sums of whole windows per timing phase, SIMD at one sample per
+symbol), ``update_lock`` (the one lock rule, also called by the loop kernel),
+``decide_windows`` (metric, Es/N0 and decisions of completed windows);
+``threshold_table``, ``new_noise_reference`` build their inputs.
 """
 
 from math import sqrt
@@ -53,12 +90,19 @@ import numpy as np
 from numba import njit, vectorize
 from scipy import special, stats
 
+from . import _lock_factors
 from ._numeric import unit_pair_power
 
 #: Per-window false-lock probability the default lock threshold is set for.
 DEFAULT_LOCK_P_FA = 1e-6
 #: Per-window probability that noise alone holds a declared lock (default unlock threshold).
 DEFAULT_UNLOCK_P_FA = 1e-2
+#: Windows of quadrature projections that measure the null scale of the lock statistic.
+REFERENCE_WINDOWS = _lock_factors.REFERENCE_WINDOWS
+#: Per-window probabilities for which noise-referenced thresholds are tabulated.
+NOISE_REFERENCED_P_FA = tuple(sorted(_lock_factors.FACTORS))
+#: Weight of a new window in the per-phase power average that picks the timing phase.
+PHASE_AVERAGING = 0.125
 #: Reported Es/N0 is clamped to this range, dB (the estimate is +-inf at the extremes).
 ESN0_DB_MIN = -60.0
 ESN0_DB_MAX = 100.0
@@ -81,6 +125,34 @@ def false_lock_threshold(window, p_fa):
 def false_lock_probability(window, threshold):
     """Per-window probability that noise alone gives ``P >= threshold``: ``Q(threshold sqrt(2N))``."""
     return float(stats.norm.sf(threshold / noise_std(window)))
+
+
+def threshold_table(window, p_fa, threshold=None):
+    """Threshold table for :func:`update_lock` (float64 array of REFERENCE_WINDOWS + 1).
+
+    ``t[0]`` is the white-noise threshold ``Qinv(p_fa)/sqrt(2N)`` (or the fixed
+    ``threshold`` when given), ``t[k]`` (k = 1..REFERENCE_WINDOWS) the factor on the
+    measured null scale (the lower median of k squared quadrature means) exceeded by
+    noise alone with probability ``p_fa`` (``coherer._lock_factors``; 0 when a fixed
+    threshold is given, which then rules alone). ``p_fa`` is one of
+    ``NOISE_REFERENCED_P_FA`` unless a fixed threshold is given.
+    """
+    t = np.zeros(REFERENCE_WINDOWS + 1)
+    if threshold is None:
+        if p_fa not in _lock_factors.FACTORS:
+            raise ValueError(f"p_fa must be one of {NOISE_REFERENCED_P_FA} for a noise-referenced "
+                             f"threshold, got {p_fa!r}")
+        t[0] = false_lock_threshold(window, p_fa)
+        t[1:] = _lock_factors.FACTORS[p_fa]
+    else:
+        t[0] = float(threshold)
+    return t
+
+
+def new_noise_reference():
+    """An empty noise reference for :func:`update_lock`: [count, position, ring of
+    REFERENCE_WINDOWS squared quadrature means]."""
+    return np.zeros(REFERENCE_WINDOWS + 2)
 
 
 def default_thresholds(window):
@@ -192,12 +264,18 @@ def unit_projection(z, power, rot):
 #: compiled with their caller's flags, so ``window_sums`` carries them too.
 _SIMD_MATH = {"reassoc", "contract", "nsz", "arcp"}
 
+#: Fields of the per-window, per-phase sums written by :func:`window_sums`.
+SUM_I, SUM_Q, SUM_M2, SUM_M4, SUM_VALID = range(5)
+SUM_FIELDS = 5
+
 
 @njit(cache=True, inline="always", fastmath=_SIMD_MATH, error_model="numpy")
 def _one_window(xs, power, rot_re, rot_im):
-    """Sums (projection, |y|^2, |y|^4, valid count) of one window given as interleaved
-    float32 I/Q ``xs``. Branch-free (gaps are masked, not skipped) so that it vectorises."""
-    s_proj = 0.0
+    """Sums (in-phase and quadrature projection, |y|^2, |y|^4, valid count) of one window
+    given as interleaved float32 I/Q ``xs``. Branch-free (gaps are masked, not skipped)
+    so that it vectorises."""
+    s_i = 0.0
+    s_q = 0.0
     s_m2 = 0.0
     s_m4 = 0.0
     s_valid = 0.0
@@ -210,78 +288,154 @@ def _one_window(xs, power, rot_re, rot_im):
         zi = zi if ok else 0.0
         p = p if ok else 0.0
         ur, ui = unit_pair_power(zr, zi, p if ok else 1.0, power)
-        s_proj += ur * rot_re - ui * rot_im
+        s_i += ur * rot_re - ui * rot_im
+        s_q += ur * rot_im + ui * rot_re
         s_m2 += p
         s_m4 += p * p
         s_valid += 1.0 if ok else 0.0
-    return s_proj, s_m2, s_m4, s_valid
+    return s_i, s_q, s_m2, s_m4, s_valid
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def _phased_window(x, power, rot_re, rot_im, sps, out):
+    """Sums of one window (complex ``x``, first sample at timing phase 0) per timing phase
+    ``k = position mod sps`` into ``out[k, :]`` (fields SUM_*)."""
+    for k in range(sps):
+        for f in range(SUM_FIELDS):
+            out[k, f] = 0.0
+    for i in range(x.shape[0]):
+        k = i % sps
+        zr = np.float64(x[i].real)
+        zi = np.float64(x[i].imag)
+        p = zr * zr + zi * zi
+        if p > 0.0 and p < np.inf:
+            ur, ui = unit_pair_power(zr, zi, p, power)
+            out[k, SUM_I] += ur * rot_re - ui * rot_im
+            out[k, SUM_Q] += ur * rot_im + ui * rot_re
+            out[k, SUM_M2] += p
+            out[k, SUM_M4] += p * p
+            out[k, SUM_VALID] += 1.0
 
 
 @njit(nogil=True, cache=True, fastmath=_SIMD_MATH, error_model="numpy")
-def window_sums(x, power, rot_re, rot_im, window, proj, m2, m4, valid):
+def window_sums(x, power, rot_re, rot_im, window, sps, sums):
     """Lock-statistic and moment sums of the whole windows of ``window`` samples in ``x``.
 
     ``x`` (complex64) starts on a window boundary; window k covers
     ``x[k window:(k + 1) window]``; a trailing part shorter than a window is not
-    used (the lock detector only ever passes whole windows). For each window writes
-    its sums (not means) to ``proj``, ``m2``, ``m4`` and its number of valid samples
-    to ``valid`` (each at least ``len(x) // window`` long); returns the number of
-    windows. A window's sums depend only on its own samples (bit for bit), so any
-    split of a stream at window boundaries gives the same results. Gap samples
-    (NaN, Inf, 0) count toward the window length but add nothing.
+    used. ``sums[k, ph, f]`` receives, for timing phase ``ph`` (sample position in
+    the window modulo ``sps``; ``window`` is a multiple of ``sps``) the sums (not
+    means) of the in-phase projection ``Re((y/|y|)^M rot)``, the quadrature one
+    ``Im(...)``, |y|^2, |y|^4 and the number of valid samples (fields SUM_*); it
+    needs ``len(x) // window`` rows and ``sps`` phases. Returns the number of windows.
+    A window's sums depend only on its own samples (bit for bit), so any split of a
+    stream at window boundaries gives the same results. Gap samples (NaN, Inf, 0)
+    count toward the window length but add nothing.
     """
-    xf = x.view(np.float32)
     count = x.shape[0] // window
+    if sps > 1:
+        for k in range(count):
+            _phased_window(x[k * window:(k + 1) * window], power, rot_re, rot_im, sps, sums[k])
+        return count
+    xf = x.view(np.float32)
     for k in range(count):
         xs = xf[2 * k * window:2 * (k + 1) * window]
         if power == 1:                 # constant M for the common cases: straight-line code
-            sums = _one_window(xs, 1, rot_re, rot_im)
+            r = _one_window(xs, 1, rot_re, rot_im)
         elif power == 2:
-            sums = _one_window(xs, 2, rot_re, rot_im)
+            r = _one_window(xs, 2, rot_re, rot_im)
         elif power == 4:
-            sums = _one_window(xs, 4, rot_re, rot_im)
+            r = _one_window(xs, 4, rot_re, rot_im)
         elif power == 8:
-            sums = _one_window(xs, 8, rot_re, rot_im)
+            r = _one_window(xs, 8, rot_re, rot_im)
         else:
-            sums = _one_window(xs, power, rot_re, rot_im)
-        proj[k], m2[k], m4[k], valid[k] = sums
+            r = _one_window(xs, power, rot_re, rot_im)
+        sums[k, 0, SUM_I] = r[0]
+        sums[k, 0, SUM_Q] = r[1]
+        sums[k, 0, SUM_M2] = r[2]
+        sums[k, 0, SUM_M4] = r[3]
+        sums[k, 0, SUM_VALID] = r[4]
     return count
 
 
-@njit(nogil=True, cache=True)
-def hysteresis(metric, lock_threshold, unlock_threshold, locked, out):
-    """Lock decisions for successive window metrics with hysteresis.
+# --- the lock decision (shared by the lock detector and the loops' indicator) ---------
 
-    Unlocked -> locked when ``metric >= lock_threshold``; locked -> unlocked when
-    ``metric < unlock_threshold`` (NaN metrics unlock). ``locked`` is the state
-    before the first window; ``out[k]`` receives the state after window k.
-    Returns the final state.
-    """
+@njit(cache=True)
+def noise_scale(ref, q_mean):
+    """Push a window's quadrature mean ``q_mean`` into the noise reference ``ref``
+    (see :func:`new_noise_reference`) and return ``(scale, count)``: the square root
+    of the lower median of the squared quadrature means of the last ``count``
+    windows, this one included."""
+    k = ref.shape[0] - 2
+    count = int(ref[0])
+    pos = int(ref[1])
+    ref[2 + pos] = q_mean * q_mean
+    pos = (pos + 1) % k
+    if count < k:
+        count += 1
+    ref[0] = count
+    ref[1] = pos
+    values = np.sort(ref[2:2 + count])
+    return np.sqrt(values[(count + 1) // 2 - 1]), count
+
+
+@njit(cache=True)
+def update_lock(locked, metric, q_mean, ref, on_table, off_table):
+    """Lock decision after one window: the shared rule of every lock indicator here.
+
+    ``metric`` and ``q_mean`` are the window's in-phase and quadrature means of
+    ``(y/|y|)^M rot``; ``ref`` the noise reference (updated here). A table ``t`` (from
+    :func:`threshold_table`) gives the threshold ``max(t[0], t[count] * scale)``:
+    t[0] for white noise, t[count] the factor for the measured null scale.
+    Unlocked -> locked when ``metric >= on``, locked -> unlocked when ``metric < off``
+    (NaN unlocks). Returns the new state."""
+    rms, count = noise_scale(ref, q_mean)
+    if locked:
+        off = max(off_table[0], off_table[count] * rms)
+        return metric >= off
+    on = max(on_table[0], on_table[count] * rms)
+    return metric >= on
+
+
+@njit(nogil=True, cache=True)
+def decide_windows(sums, count, symbols, sps, ref, phase_power, on_table, off_table, locked,
+                   metric, q_metric, esn0_db_out, decisions, phases):
+    """Finish ``count`` windows from :func:`window_sums`.
+
+    With ``sps > 1`` the timing phase of each window is the one of largest mean
+    power, averaged over windows in ``phase_power`` (updated here; NaN entries mean
+    no history yet); the statistics are those of that phase's ``symbols`` samples.
+    Writes ``metric = I / symbols``, ``q_metric = Q / symbols``, the M2M4 Es/N0 in dB
+    of the valid samples (NaN if none), the decision (:func:`update_lock`, starting
+    from ``locked``) and the chosen phase. Returns the final state."""
     state = locked
-    for k in range(metric.shape[0]):
-        m = metric[k]
-        if state:
-            if not m >= unlock_threshold:
-                state = False
-        elif m >= lock_threshold:
-            state = True
-        out[k] = state
-    return state
-
-
-@njit(nogil=True, cache=True)
-def decide_windows(proj, m2, m4, valid, count, window, lock_threshold, unlock_threshold, locked,
-                   metric, esn0_db_out, decisions):
-    """Finish ``count`` windows from :func:`window_sums`: ``metric = proj / window``,
-    M2M4 Es/N0 in dB from the valid samples (NaN if none), and the lock decisions
-    with :func:`hysteresis` starting from ``locked``. Returns the final state."""
     for k in range(count):
-        metric[k] = proj[k] / window
-        if valid[k] > 0.0:
-            esn0_db_out[k] = esn0_db_scalar(m2m4_esn0_scalar(m2[k] / valid[k], m4[k] / valid[k]))
+        best = 0
+        if sps > 1:
+            top = -1.0
+            for ph in range(sps):
+                v = sums[k, ph, SUM_VALID]
+                if v > 0.0:
+                    e = sums[k, ph, SUM_M2] / v
+                    if np.isnan(phase_power[ph]):
+                        phase_power[ph] = e
+                    else:
+                        phase_power[ph] += PHASE_AVERAGING * (e - phase_power[ph])
+                if phase_power[ph] > top:
+                    top = phase_power[ph]
+                    best = ph
+        s = sums[k, best]
+        metric[k] = s[SUM_I] / symbols
+        q_metric[k] = s[SUM_Q] / symbols
+        if s[SUM_VALID] > 0.0:
+            esn0_db_out[k] = esn0_db_scalar(m2m4_esn0_scalar(s[SUM_M2] / s[SUM_VALID],
+                                                             s[SUM_M4] / s[SUM_VALID]))
         else:
             esn0_db_out[k] = np.nan
-    return hysteresis(metric[:count], lock_threshold, unlock_threshold, locked, decisions[:count])
+        state = update_lock(state, metric[k], q_metric[k], ref, on_table, off_table)
+        decisions[k] = state
+        phases[k] = best
+    return state
 
 
 __all__ = [
@@ -289,5 +443,6 @@ __all__ = [
     "noise_std", "false_lock_threshold", "false_lock_probability", "default_thresholds",
     "c_m", "projection_variance", "detection_probability",
     "m2m4_esn0_scalar", "esn0_db_scalar", "m2m4_esn0", "esn0_db",
-    "unit_projection", "window_sums", "hysteresis", "decide_windows",
+    "REFERENCE_WINDOWS", "threshold_table", "new_noise_reference",
+    "unit_projection", "window_sums", "noise_scale", "update_lock", "decide_windows",
 ]

@@ -33,6 +33,7 @@ ST_ESN0_DB = "esn0_db"    # double
 ST_SAMPLE = "sample"      # uint64, absolute stream offset
 ST_TIME_S = "time_s"      # double, seconds
 ST_FREQ_HZ = "freq_hz"    # double, Hz, only when an upstream carrier_freq was seen
+ST_WINDOW_START = "window_start"  # uint64, first sample of the window these values describe
 
 # Interned pmt symbols, built once --------------------------------------------
 CARRIER_LOCK_PMT = pmt.intern(CARRIER_LOCK)
@@ -48,17 +49,20 @@ ST_ESN0_DB_PMT = pmt.intern(ST_ESN0_DB)
 ST_SAMPLE_PMT = pmt.intern(ST_SAMPLE)
 ST_TIME_S_PMT = pmt.intern(ST_TIME_S)
 ST_FREQ_HZ_PMT = pmt.intern(ST_FREQ_HZ)
+ST_WINDOW_START_PMT = pmt.intern(ST_WINDOW_START)
 
 
 # Status dict -------------------------------------------------------------------
 
-def status_dict(locked, metric, esn0_db, sample, time_s, freq_hz=None):
+def status_dict(locked, metric, esn0_db, sample, time_s, window_start, freq_hz=None):
     """The status dict (pmt) published as ``carrier_status`` tag and ``status`` message.
 
     locked: bool; metric: lock statistic; esn0_db: Es/N0 estimate, dB;
-    sample: absolute stream offset (uint64); time_s: seconds (absolute with
-    rx_time, else offset / sample_rate); freq_hz: latest upstream carrier_freq
-    tag value, Hz, or None to leave the key out.
+    sample: absolute stream offset (uint64) where the status is placed (the last
+    sample of the deciding window); time_s: seconds (absolute with rx_time, else
+    offset / sample_rate); window_start: first sample (uint64) of the window whose
+    decision and values these are; freq_hz: latest upstream carrier_freq tag
+    value, Hz, or None to leave the key out.
     """
     d = pmt.make_dict()
     d = pmt.dict_add(d, ST_LOCKED_PMT, pmt.from_bool(bool(locked)))
@@ -66,6 +70,7 @@ def status_dict(locked, metric, esn0_db, sample, time_s, freq_hz=None):
     d = pmt.dict_add(d, ST_ESN0_DB_PMT, pmt.from_double(float(esn0_db)))
     d = pmt.dict_add(d, ST_SAMPLE_PMT, pmt.from_uint64(int(sample)))
     d = pmt.dict_add(d, ST_TIME_S_PMT, pmt.from_double(float(time_s)))
+    d = pmt.dict_add(d, ST_WINDOW_START_PMT, pmt.from_uint64(int(window_start)))
     if freq_hz is not None:
         d = pmt.dict_add(d, ST_FREQ_HZ_PMT, pmt.from_double(float(freq_hz)))
     return d

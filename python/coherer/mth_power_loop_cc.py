@@ -26,6 +26,10 @@ START_SAMPLES = 256
 #: (higher) probability level below which a locked loop is declared unlocked.
 LOCK_P_FALSE = 1e-6
 UNLOCK_P_LEVEL = 1e-1
+#: Averaging length of the M-th power line estimate (the detector gain while locked),
+#: samples: LINE_AVERAGING_PER_BT / (B_L T), at least MIN_LINE_AVERAGING.
+LINE_AVERAGING_PER_BT = 8.0
+MIN_LINE_AVERAGING = 1024
 #: Noise bandwidth of the slip tracker's reference, as a fraction of B_L.
 SLIP_REFERENCE_BW = 0.05
 #: ... and in its settling stages after lock is declared (see _loop_kernel.REF_STAGE_END).
@@ -69,20 +73,28 @@ class mth_power_loop_cc(gr.sync_block):
             samples (0 = never).
         diagnostics: add outputs 1-3: reference e^{j theta^} (complex), NCO
             frequency in Hz (float), phase error in rad, carrier-phase units (float).
+            They are optional: connect none, 1, 1-2 or 1-3 (in order).
 
     Output 0 is x e^{-j theta^}. Input samples that are NaN, Inf or exactly zero
     are gaps: the NCO coasts on its frequency and the output sample is 0.
 
+    Detector gain: normalised by an estimate of the M-th power line itself while
+    locked (so the loop's actual noise bandwidth is ``noise_bw_hz`` for pulse-shaped,
+    oversampled signals and residual carriers too), by the M2M4 signal estimate
+    while acquiring (see ``coherer._loop_kernel``).
+
     Internal lock indicator (``locked()``): the phase-only statistic
     mean cos(M arg y - M point_angle) over windows of a quarter acquisition
-    block; lock when it exceeds Qinv(1e-6)/sqrt(2N) (false-lock probability
-    1e-6 per window on noise), unlock below Qinv(0.1)/sqrt(2N) (on noise alone a locked
-    indicator drops within 1.1 windows on average).
+    block, decided by the lock detector's rule (``coherer.lockstat.update_lock``):
+    lock at a false-lock probability of 1e-6 per window on noise of any spectrum,
+    unlock at the 0.1 level.
 
     Tags: ``cycle_slip`` (pmt long, signed slips in units of 2*pi/M; +1 = the
     NCO phase advanced by 2*pi/M relative to the carrier) on the sample where a
     slip is declared; ``carrier_freq`` (pmt double, Hz) every ``tag_interval``
-    samples.
+    samples, and always at every change of the internal lock state (on the last
+    sample of the deciding window) and at every acquisition re-steer (on the first
+    sample steered), so a reader never holds a frequency older than those events.
 
     Runtime setters (thread safe): set_noise_bw_hz, set_damping, set_freq_guess_hz.
     The ``command`` message port takes a pmt dict with any of ``noise_bw_hz``,
@@ -116,8 +128,8 @@ class mth_power_loop_cc(gr.sync_block):
         self._acquire = bool(acquire)
 
         out_sig = [np.complex64]
-        if self._diagnostics:
-            out_sig = [np.complex64, np.complex64, np.float32, np.float32]
+        if self._diagnostics:       # outputs 1-3 optional (connect a prefix of them, in order)
+            out_sig = gr.py_io_signature(1, 4, [np.complex64, np.complex64, np.float32, np.float32])
         gr.sync_block.__init__(self, name=name, in_sig=[np.complex64], out_sig=out_sig)
         self._skip = request_long_calls(self)  # leading history samples work() skips
 
@@ -126,6 +138,9 @@ class mth_power_loop_cc(gr.sync_block):
         # acquisition FFT length and lock window are fixed at construction
         self._nfft = acquisition.fft_length(noise_bw_hz, self._fs)
         self._lock_window = max(64, self._nfft // 4)
+        self._on_table = lockstat.threshold_table(self._lock_window, LOCK_P_FALSE)
+        self._off_table = lockstat.threshold_table(self._lock_window, UNLOCK_P_LEVEL)
+        self._lock_ref = lockstat.new_noise_reference()
         self._acq_buf = np.zeros(self._nfft, np.complex64)
         self._acq_log = []
         self._lock_log = []
@@ -143,6 +158,8 @@ class mth_power_loop_cc(gr.sync_block):
         self._slip_count = np.zeros(8192, np.int64)
         self._lock_at = np.zeros(64, np.int64)
         self._lock_to = np.zeros(64, np.int64)
+        self._lock_freq = np.zeros(64)
+        self._held_tag = None                  # (offset, Hz) of a re-steer tag for the next call
 
         self.message_port_register_in(metadata.COMMAND_PORT_PMT)
         self.set_msg_handler(metadata.COMMAND_PORT_PMT, self._handle_command)
@@ -168,9 +185,7 @@ class mth_power_loop_cc(gr.sync_block):
         p[K.P_ALPHA] = 1.0 / max(MIN_AVERAGING, AVERAGING_PER_BT / d.bt)
         p[K.P_STEP_IN_FREQ] = 1.0 if loop_order == 1 else 0.0
         p[K.P_LOCK_WINDOW] = self._lock_window
-        # thresholds for one sample; the kernel divides by sqrt(valid samples in the window)
-        p[K.P_LOCK_Z_ON] = lockstat.false_lock_threshold(1, LOCK_P_FALSE)
-        p[K.P_LOCK_Z_OFF] = lockstat.false_lock_threshold(1, UNLOCK_P_LEVEL)
+        p[K.P_LINE_ALPHA] = 1.0 / max(MIN_LINE_AVERAGING, LINE_AVERAGING_PER_BT / d.bt)
         p[K.P_REF_G1], p[K.P_REF_G2], p[K.P_REF_G3] = design.textbook_gains(
             3, SLIP_REFERENCE_BW * d.bt, 1.0)
         beta = min(0.5, SLIP_ANGLE_BETA_PER_BT * d.bt)
@@ -190,10 +205,11 @@ class mth_power_loop_cc(gr.sync_block):
         """Compile the kernel now rather than in the first work() call."""
         x = np.ones(4, np.complex64)
         st = K.new_state()
-        self._run_kernel(x, np.empty(4, np.complex64), st, self._params, diag=None)
+        self._run_kernel(x, np.empty(4, np.complex64), st, self._params, diag=None,
+                         lock_ref=lockstat.new_noise_reference())
 
     def _run_kernel(self, x, out, state, params, diag, marks=None, mark_freq=None,
-                    stop_first=0, stop_every=0):
+                    stop_first=0, stop_every=0, lock_ref=None):
         """Run the kernel on ``x`` (stopping early at an unlocked FFT-block end when
         ``stop_every > 0``); returns (samples processed, slips declared, lock changes)."""
         if diag is None:
@@ -208,9 +224,12 @@ class mth_power_loop_cc(gr.sync_block):
         if len(self._lock_at) < len(x) // self._lock_window + 2:
             self._lock_at = np.zeros(len(x) // self._lock_window + 2, np.int64)
             self._lock_to = np.zeros(len(self._lock_at), np.int64)
+            self._lock_freq = np.zeros(len(self._lock_at))
         return K.mth_power_loop(x, out, ref, freq, err, marks, mark_freq,
                                 self._slip_at, self._slip_count, self._lock_at, self._lock_to,
-                                stop_first, stop_every, state, params, self._power)
+                                self._lock_freq, stop_first, stop_every, state, params,
+                                self._lock_ref if lock_ref is None else lock_ref,
+                                self._on_table, self._off_table, self._power)
 
     def _set_nco_frequency(self, rad_per_sample):
         """Re-steer the NCO (work() thread only); the slip tracker follows, so it is not a slip."""
@@ -224,15 +243,17 @@ class mth_power_loop_cc(gr.sync_block):
         st[K.S_PREV_STEP] = rad_per_sample
 
     def _steer(self, sample):
-        """End of an acquisition block: if unlocked, estimate the offset from z^M and steer."""
+        """End of an acquisition block: if unlocked, estimate the offset from z^M and steer.
+        Returns the new frequency (Hz), or None if the NCO was left alone."""
         if self._state[K.S_LOCKED] > 0.0:
-            return
+            return None
         f = acquisition.estimate_offset(self._acq_buf, self._power, self._fs, self._freq_range)
         if f is None:
-            return
+            return None
         self._set_nco_frequency(self._hz_to_rad(f))
         self._acq_log.append((int(sample), f))
         del self._acq_log[:-EVENT_LOG]
+        return f
 
     # --- runtime control -------------------------------------------------------------
     def set_noise_bw_hz(self, noise_bw_hz):
@@ -330,23 +351,39 @@ class mth_power_loop_cc(gr.sync_block):
         if pending is not None:
             self._pending_freq = None
             self._set_nco_frequency(pending)
-        with_diag = self._diagnostics and len(output_items) == 4
+        with_diag = len(output_items) > 1
         nfft = self._nfft
+        if self._held_tag is not None:
+            self._tag_frequency(*self._held_tag)
+            self._held_tag = None
         pos = 0
         while pos < n:
             # one kernel call for the whole buffer; while acquiring it returns at each
             # unlocked FFT-block end so that the NCO can be re-steered there
             end, n_slips, n_locks = self._process(x, output_items, pos, start, params, with_diag)
+            hz = self._fs / (2.0 * pi)
             for i in range(n_locks):
-                self._lock_log.append((start + pos + int(self._lock_at[i]), bool(self._lock_to[i])))
+                at = start + pos + int(self._lock_at[i])
+                self._lock_log.append((at, bool(self._lock_to[i])))
+                # a fresh frequency on the last sample of the window that changed the state
+                self._tag_frequency(at - 1, float(self._lock_freq[i]) * hz)
             if n_locks:
                 del self._lock_log[:-EVENT_LOG]
             if self._acquire:
                 self._keep_for_acquisition(x[pos:end], start + pos)
                 if (start + end) % nfft == 0:
-                    self._steer(start + end)
+                    f = self._steer(start + end)
+                    if f is not None:         # the new frequency holds from sample start + end on
+                        if end < n:
+                            self._tag_frequency(start + end, f)
+                        else:
+                            self._held_tag = (start + end, f)
             pos = end
         return n
+
+    def _tag_frequency(self, offset, freq_hz):
+        """A ``carrier_freq`` tag (Hz) at absolute ``offset``."""
+        self.add_item_tag(0, int(offset), metadata.CARRIER_FREQ_PMT, pmt.from_double(float(freq_hz)))
 
     def _keep_for_acquisition(self, seg, offset):
         """Copy ``seg`` (starting at absolute ``offset``) into the ring of the last FFT block:
@@ -365,7 +402,10 @@ class mth_power_loop_cc(gr.sync_block):
         (end, slips declared, lock changes)."""
         diag = None
         if with_diag:
-            diag = (output_items[1][pos:], output_items[2][pos:], output_items[3][pos:])
+            outs = [o[pos:] for o in output_items[1:]]
+            diag = (outs[0] if len(outs) > 0 else self._empty_c,
+                    outs[1] if len(outs) > 1 else self._empty_f,
+                    outs[2] if len(outs) > 2 else self._empty_f)
         marks = mark_freq = None
         n = len(x) - pos
         if self._tag_interval:
@@ -379,7 +419,7 @@ class mth_power_loop_cc(gr.sync_block):
         done, n_slips, n_locks = self._run_kernel(x[pos:], output_items[0][pos:], self._state,
                                                   params, diag, marks, mark_freq,
                                                   stop_first, stop_every)
-        if diag is not None:
+        if diag is not None and len(diag[1]):
             np.multiply(diag[1][:done], self._fs / (2.0 * pi), out=diag[1][:done])   # -> Hz
         base = start + pos
         if marks is not None:

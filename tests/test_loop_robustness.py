@@ -15,11 +15,11 @@ from loop_harness import count_true_slips, mpsk, run_loop, wrapped_error
 
 
 def chunk_stimulus():
-    """Acquisition, lock, slips and frequency tags all happen inside 30000 samples:
+    """Acquisition, lock, slips and frequency tags all happen inside 80000 samples:
     a QPSK carrier at a large offset at 4 dB, where a B_L T = 0.02 loop (loop SNR ~2.3)
     slips every few thousand samples."""
     rng = np.random.default_rng(21)
-    n = 30000
+    n = 80000
     theta = 0.4 + 2 * np.pi * 0.071 * np.arange(n)
     x, _ = mpsk(rng, 4, n, 4, theta)
     return x

@@ -20,7 +20,7 @@ AVERAGING_PER_BT = 32.0
 #: max(MIN_SIGNAL_FRACTION, MAX_GAIN_BOOST^(-2/M)), so the gain boost (M2/S)^(M/2)
 #: never exceeds MAX_GAIN_BOOST; the loop closes after START_SAMPLES samples.
 MIN_SIGNAL_FRACTION = 1e-4
-MAX_GAIN_BOOST = 1e4
+MAX_GAIN_BOOST = 10.0
 START_SAMPLES = 256
 #: Internal lock indicator: false-lock probability per window on noise, and the
 #: (higher) probability level below which a locked loop is declared unlocked.

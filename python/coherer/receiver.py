@@ -34,6 +34,9 @@ MAX_STATUS_POINTS = 20_000
 #: A flowgraph whose collector sees no new sample for this long has failed (s): a block
 #: whose work() raised leaves the flowgraph waiting forever.
 STALL_TIMEOUT_S = 60.0
+#: Samples read (spread over the recording) to estimate the symbol rate, and the fewest usable.
+SYMBOL_RATE_SAMPLES = 1 << 20
+SYMBOL_RATE_MIN_SAMPLES = 4096
 
 
 @dataclass(frozen=True)
@@ -47,6 +50,73 @@ class ReceiverSettings:
     freq_guess_hz: float = 0.0     #: NCO start frequency, Hz
     lock_threshold: float = None
     unlock_threshold: float = None
+    symbol_rate_hz: float = None   #: None: estimated from the recording
+    rolloff: float = 0.35          #: roll-off of the root-raised-cosine matched filter
+
+
+@dataclass(frozen=True)
+class SymbolTiming:
+    """The symbol rate the detector was run with, and where it came from."""
+    source: str                    #: "given", "estimated" or "none" (no line found)
+    symbol_rate_hz: float          #: Hz (None for "none")
+    samples_per_symbol: int        #: what the detector used (1 for "none")
+    exact_samples_per_symbol: float = None   #: sample_rate / symbol rate
+    line_to_floor_db: float = None #: strength of the spectral line (estimated only)
+    note: str = ""                 #: why one sample per symbol was used, when it was
+
+    def as_dict(self):
+        return {"source": self.source, "symbol_rate_hz": self.symbol_rate_hz,
+                "samples_per_symbol": self.samples_per_symbol,
+                "exact_samples_per_symbol": self.exact_samples_per_symbol,
+                "line_to_floor_db": self.line_to_floor_db, "note": self.note}
+
+
+def symbol_timing(rec, settings):
+    """The detector's samples per symbol: from ``settings.symbol_rate_hz`` when given,
+    else estimated from the recording (the spectral line of |x|^2); one sample per
+    symbol when no line is found."""
+    from .lock_detector_cc import MAX_SAMPLES_PER_SYMBOL
+    fs = rec.sample_rate
+    if settings.symbol_rate_hz is not None:
+        exact = fs / settings.symbol_rate_hz
+        return SymbolTiming("given", float(settings.symbol_rate_hz),
+                            int(min(MAX_SAMPLES_PER_SYMBOL, max(1, round(exact)))), exact)
+    from .recording import read_samples
+    from .symbolrate import estimate_symbol_rate
+    n = min(rec.num_samples, SYMBOL_RATE_SAMPLES)
+    if n < SYMBOL_RATE_MIN_SAMPLES:
+        return SymbolTiming("none", None, 1, note="recording too short to estimate the symbol rate; "
+                                                  "treated as one sample per symbol")
+    if rec.num_samples <= n:
+        est = estimate_symbol_rate(read_samples(rec, 0, n), fs, max_samples=n)
+    else:                      # four blocks spread over a long recording
+        size = n // 4
+        parts = [read_samples(rec, (rec.num_samples - size) * i // 3, size) for i in range(4)]
+        est = estimate_symbol_rate(np.concatenate(parts), fs, max_samples=n, blocks=4)
+    if not est.detected:
+        return SymbolTiming("none", None, 1, line_to_floor_db=float(est.line_to_floor_db),
+                            note=est.reason)
+    exact = float(est.samples_per_symbol)
+    return SymbolTiming("estimated", float(est.rate_hz),
+                        int(min(MAX_SAMPLES_PER_SYMBOL, max(1, round(exact)))), exact,
+                        float(est.line_to_floor_db))
+
+
+def matched_filter_taps(sample_rate, symbol_rate_hz, rolloff):
+    """Unit-energy root-raised-cosine taps (the framework's designer), 11 symbols long."""
+    from gnuradio import filter as gr_filter
+    sps = sample_rate / symbol_rate_hz
+    n = 2 * int(round(5.5 * sps)) + 1
+    taps = np.array(gr_filter.firdes.root_raised_cosine(1.0, sample_rate, symbol_rate_hz, rolloff, n))
+    return taps / np.sqrt(np.sum(taps * taps))
+
+
+def detector_window(window, samples_per_symbol):
+    """The detector window (samples) for a requested one: a whole number of symbols, at
+    least the detector's minimum."""
+    from .lock_detector_cc import MIN_SYMBOLS
+    sps = int(samples_per_symbol)
+    return max(MIN_SYMBOLS * sps if sps > 1 else 0, (int(window) // sps) * sps)
 
 
 #: Windows before an unlock left out of an interval's mean frequency: the window in
@@ -113,16 +183,21 @@ class _collector(gr.sync_block):
     """Sink that records events, status and decimated traces.
 
     Inputs: 0 detector output (corrected samples with all tags), 1 the loop's input,
-    2 NCO frequency (Hz), 3 the loop's reference e^{j theta^}.
+    2 NCO frequency (Hz), 3 the loop's reference e^{j theta^}, 4 and 5 the detector's
+    held lock metric and Es/N0 (dB). A lock change is tagged on the last sample of the
+    window that decided it; the event and the interval start at that window's first
+    sample, ``window - 1`` earlier, less the matched filter's delay ``delay`` (samples).
     """
 
-    def __init__(self, sample_rate, decimation, window):
+    def __init__(self, sample_rate, decimation, window, delay=0):
         gr.sync_block.__init__(self, name="coherer_collector",
-                               in_sig=[np.complex64, np.complex64, np.float32, np.complex64],
+                               in_sig=[np.complex64, np.complex64, np.float32, np.complex64,
+                                       np.float32, np.float32],
                                out_sig=None)
         self._fs = float(sample_rate)
         self._trace_step = int(decimation)
         self._window = int(window)
+        self._delay = int(delay)
         self.events = []
         self.status = []              # (sample, metric, esn0_db, locked)
         self.intervals = []
@@ -160,7 +235,9 @@ class _collector(gr.sync_block):
             if key == metadata.CARRIER_LOCK:
                 self._accumulate(freq, pos, rel, start)
                 pos = rel
-                self._on_lock_change(offset, bool(pmt.to_bool(value)), float(freq[rel]))
+                self._on_lock_change(max(0, offset - (self._window - 1) - self._delay),
+                                     bool(pmt.to_bool(value)),
+                                     float(freq[rel]), float(ins[4][rel]), float(ins[5][rel]))
             elif key == metadata.CYCLE_SLIP:
                 if self._open is None:    # the loop was locked, the detector already not
                     self.slips_outside_lock += 1
@@ -192,9 +269,13 @@ class _collector(gr.sync_block):
             self._open.add_frequency(w, float(np.sum(freq[lo:cut], dtype=np.float64)), cut - lo)
             lo = cut
 
-    def _on_lock_change(self, sample, locked, freq_hz):
+    def _on_lock_change(self, sample, locked, freq_hz, metric, esn0_db):
         event = {"event": "lock" if locked else "unlock", "sample": int(sample),
                  "time_s": sample / self._fs, "freq_hz": freq_hz}
+        if np.isfinite(metric):
+            event["metric"] = metric
+        if np.isfinite(esn0_db):
+            event["esn0_db"] = esn0_db
         self.events.append(event)
         if locked and self._open is None:
             self._open = Interval(int(sample), int(sample))
@@ -207,7 +288,7 @@ class _collector(gr.sync_block):
         d = pmt.to_python(value)
         if not isinstance(d, dict):
             return
-        sample = int(d.get(metadata.ST_SAMPLE, 0))
+        sample = max(0, int(d.get(metadata.ST_WINDOW_START, 0)) - self._delay)
         metric = float(d.get(metadata.ST_METRIC, np.nan))
         esn0_db = float(d.get(metadata.ST_ESN0_DB, np.nan))
         locked = bool(d.get(metadata.ST_LOCKED, False))
@@ -239,7 +320,7 @@ class RunResult:
     """Everything a run produced (times in s, frequencies in Hz)."""
     recording: object
     settings: ReceiverSettings
-    num_samples: int                 #: samples processed (whole detector windows)
+    num_samples: int                 #: samples processed (every sample of the recording)
     events: list
     intervals: list                  #: list of :class:`Interval`
     status: np.ndarray               #: rows (sample, metric, esn0_db, locked)
@@ -248,6 +329,8 @@ class RunResult:
     loop_design: object              #: :class:`coherer.design.LoopDesign`
     wall_s: float
     slips_outside_lock: int = 0      #: listed slips that fell where the detector said unlocked
+    timing: SymbolTiming = None      #: the symbol rate the detector used
+    window: int = None               #: the detector window actually used, samples
 
     def interval_summaries(self):
         rec = self.recording
@@ -255,8 +338,10 @@ class RunResult:
 
     def predicted_phase_rms_rad(self, esn0_db):
         """Linear-theory phase-error RMS (rad) of this loop at Es/N0 ``esn0_db`` (dB)."""
+        sps = self.timing.samples_per_symbol if self.timing is not None else 1
+        # Es/N0 is per symbol; the loop runs per sample and sees the shaped signal
         var = design.phase_error_variance(self.settings.power, design.db_to_linear(esn0_db),
-                                          self.loop_design.actual_bt)
+                                          self.loop_design.actual_bt, samples_per_symbol=sps)
         return float(np.sqrt(var))
 
 
@@ -305,28 +390,41 @@ def run_receiver(rec, settings, progress=None):
     """
     fs = rec.sample_rate
     total = rec.num_samples
-    # status once per k whole windows, so every status sample is a window start
-    status_interval = settings.window * max(1, int(ceil(total / MAX_STATUS_POINTS / settings.window)))
+    timing = symbol_timing(rec, settings)
+    window = detector_window(settings.window, timing.samples_per_symbol)
+    # one status per k windows (at the end of the window holding each multiple)
+    status_interval = window * max(1, int(ceil(total / MAX_STATUS_POINTS / window)))
     decimation = max(1, int(ceil(total / MAX_TRACE_POINTS)))
 
     loop = mth_power_loop_cc(fs, settings.power, settings.noise_bw_hz, settings.damping,
                              settings.loop_order, freq_guess_hz=settings.freq_guess_hz,
                              acquire=True, diagnostics=True)
-    det = lock_detector_cc(fs, settings.power, window=settings.window,
+    det = lock_detector_cc(fs, settings.power, window=window,
                            lock_threshold=settings.lock_threshold,
                            unlock_threshold=settings.unlock_threshold,
-                           status_interval=status_interval)
-    sink = _collector(fs, decimation, settings.window)
+                           status_interval=status_interval,
+                           samples_per_symbol=timing.samples_per_symbol)
+    chain_after_loop = []
+    delay = 0
+    if timing.samples_per_symbol > 1:
+        # the detector judges symbols: a matched filter first (delay (taps - 1) / 2 samples)
+        from gnuradio import filter as gr_filter
+        taps = matched_filter_taps(fs, timing.symbol_rate_hz, settings.rolloff)
+        chain_after_loop = [gr_filter.fir_filter_ccf(1, taps.astype(np.float32).tolist())]
+        delay = (len(taps) - 1) // 2
+    sink = _collector(fs, decimation, window, delay)
     err_sink = blocks.null_sink(gr.sizeof_float)
 
     tb = gr.top_block("coherer_run")
     head, chain = _source_chain(tb, rec)
     tb.connect(head, (loop, 0))
-    tb.connect((loop, 0), det, (sink, 0))
+    tb.connect((loop, 0), *chain_after_loop, det, (sink, 0))
     tb.connect(head, (sink, 1))
     tb.connect((loop, 2), (sink, 2))
     tb.connect((loop, 1), (sink, 3))
     tb.connect((loop, 3), err_sink)
+    tb.connect((det, 1), (sink, 4))
+    tb.connect((det, 2), (sink, 5))
 
     t0 = time.monotonic()
     finished = threading.Event()
@@ -355,8 +453,7 @@ def run_receiver(rec, settings, progress=None):
     if stalled:
         raise ReceiverError(f"the flowgraph made no progress for {STALL_TIMEOUT_S:g} s "
                             f"(at sample {sink.progress} of {total}); see GNU Radio's log on stderr")
-    # the detector releases whole windows only: a last partial window is not processed
-    processed = sink.progress
+    processed = sink.progress           # every sample (the detector holds nothing back)
     if progress is not None:
         progress(total, total)          # the run is complete
     sink.finish(processed)
@@ -364,13 +461,13 @@ def run_receiver(rec, settings, progress=None):
     thresholds = (_getter(det, "lock_threshold"), _getter(det, "unlock_threshold"))
     status = np.array(sink.status, dtype=float).reshape(-1, 4)
     events = sorted(sink.events, key=lambda e: (e["sample"], e["event"] != "cycle_slip"))
-    _enrich_lock_events(events, status)
     if rec.center_freq_hz is not None:
         for e in events:
             if e["event"] == "lock":
                 e["carrier_hz"] = rec.center_freq_hz + e["freq_hz"]
     return RunResult(rec, settings, processed, events, sink.intervals, status, sink.traces(),
-                     thresholds, loop.loop_design(), time.monotonic() - t0, sink.slips_outside_lock)
+                     thresholds, loop.loop_design(), time.monotonic() - t0, sink.slips_outside_lock,
+                     timing, window)
 
 
 def _getter(blk, name):
@@ -381,22 +478,5 @@ def _getter(blk, name):
         return None
 
 
-def _enrich_lock_events(events, status):
-    """Give each lock/unlock event the metric and Es/N0 of the first status report at
-    or after its sample (the detector reports once per status interval)."""
-    if not len(status):
-        return
-    samples = status[:, 0]
-    for e in events:
-        if e["event"] not in ("lock", "unlock"):
-            continue
-        i = int(np.searchsorted(samples, e["sample"]))
-        if i < len(samples):
-            if np.isfinite(status[i, 1]):
-                e["metric"] = float(status[i, 1])
-            if np.isfinite(status[i, 2]):
-                e["esn0_db"] = float(status[i, 2])
-
-
-__all__ = ["ReceiverSettings", "Interval", "RunResult", "ReceiverError", "run_receiver",
+__all__ = ["ReceiverSettings", "SymbolTiming", "symbol_timing", "detector_window", "Interval", "RunResult", "ReceiverError", "run_receiver",
            "MAX_TRACE_POINTS", "MAX_STATUS_POINTS"]

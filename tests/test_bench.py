@@ -4,6 +4,7 @@ computes the same recursion as the loop block; the memory soak measures RSS grow
 and notices a leak. No test here asserts a speed."""
 
 import json
+import re
 import math
 
 import numpy as np
@@ -24,7 +25,7 @@ def test_quick_json_has_every_figure():
     assert proc.returncode == 0, proc.stderr
     result = json.loads(proc.stdout)           # the whole of stdout is one JSON document
     for key in ("machine", "samples", "repetitions", "c_reference", "blocks", "skipped",
-                "framework_floor", "two_chains", "latency", "acceptance", "elapsed_s"):
+                "framework_floor", "two_chains", "latency", "targets", "elapsed_s"):
         assert key in result, key
     assert result["machine"]["cores"] >= 1 and result["machine"]["cpu_model"]
     names = [r["block"] for r in result["blocks"]] + [s["block"] for s in result["skipped"]]
@@ -48,16 +49,33 @@ def test_quick_json_has_every_figure():
     assert result["framework_floor"]["wall"]["median"] > 0
     assert result["two_chains"]["ratio"] > 0
     assert result["latency"]["construction_s"] > 0 and result["latency"]["first_output_s"] > 0
-    assert {c["check"] for c in result["acceptance"]} >= {
+    assert {c["check"] for c in result["targets"]} >= {
         "squaring loop in flowgraph / C loop", "M=4 / M=2 in flowgraph", "M=8 / M=2 in flowgraph",
         "lock detector in flowgraph / C loop", "feed-forward in flowgraph / C loop",
         "two chains / one chain"}
+    # a quick run is too short to judge a target: no verdicts, only the figures
+    assert all(v is None for c in result["targets"] for v in c["met"].values())
+    assert all(v is not None for c in result["targets"] for v in c["value"].values())
 
 
 def test_table_is_printed_without_json():
     proc = clirunner.coherer("bench", "--quick", timeout=300)
     assert proc.returncode == 0, proc.stderr
-    assert "squaring loop (M=2)" in proc.stdout and "acceptance (issues 7 and 8)" in proc.stdout
+    assert "squaring loop (M=2)" in proc.stdout and "targets (not judged" in proc.stdout
+    assert not re.search(r"\bmet\b", proc.stdout, re.IGNORECASE), proc.stdout
+    assert not re.search(r"\bissues?\b|acceptance", proc.stdout + proc.stderr, re.IGNORECASE)
+
+
+def test_full_run_judges_targets():
+    from gnuradio.coherer.bench import suite
+    result = {"blocks": [{"block": "squaring loop (M=2)", "flowgraph": {},
+                          "flowgraph_vs_c": {"wall": 1.3, "cpu": 0.9}}],
+              "two_chains": {"ratio": 1.8}}
+    checks = {c["check"]: c["met"] for c in suite.targets(result, judged=True)}
+    assert checks["squaring loop in flowgraph / C loop"] == {"wall": True, "cpu": False}
+    assert checks["two chains / one chain"] == {"wall": True}
+    quick = suite.targets(result, judged=False)
+    assert all(v is None for c in quick for v in c["met"].values())
 
 
 def test_bad_soak_length_is_one_error_line():

@@ -13,7 +13,7 @@ import time
 
 from gnuradio import blocks, gr
 
-#: Largest acceptable RSS growth after warm-up, MB (issue 7 acceptance).
+#: Largest acceptable RSS growth after warm-up, MB.
 GROWTH_LIMIT_MB = 5.0
 MB = 1024.0 * 1024.0
 

@@ -42,6 +42,8 @@ def run_command(args):
         if not quiet:
             print(f"bench: {msg} ...", file=sys.stderr, flush=True)
 
+    from .._warmup import COMMAND_GROUPS, prepare
+    prepare(COMMAND_GROUPS["bench"])        # compile before anything is timed
     try:
         with _stdout_to_stderr() if args.json else contextlib.nullcontext():
             result = suite.run(quick=args.quick, soak=args.soak or "soak_samples" in kwargs,

@@ -14,6 +14,7 @@ import math
 
 from .. import design
 from . import UserError
+from .errors import si_number      # 250k, 2.4M, ...
 
 #: Slips expected more often than once per this many seconds get a warning.
 SLIP_WARNING_S = 60.0
@@ -38,11 +39,11 @@ def register(subparsers):
         description="Design an M-th power carrier loop and predict its behaviour. All frequencies "
                     "in Hz; the loop updates once per sample, so the sample rate is the symbol rate "
                     "times --samples-per-symbol; --esn0 is Es/N0 per symbol.")
-    p.add_argument("--sample-rate", type=float, required=True, metavar="HZ",
+    p.add_argument("--sample-rate", type=si_number, required=True, metavar="HZ",
                    help="loop update rate, samples/s")
     p.add_argument("--power", type=int, required=True, metavar="M",
                    help=f"symmetry order M: 1 pilot/PLL, 2 BPSK, 4 QPSK, 8 8PSK (1..{design.MAX_POWER})")
-    p.add_argument("--noise-bw", type=float, metavar="HZ",
+    p.add_argument("--noise-bw", type=si_number, metavar="HZ",
                    help=f"one-sided loop noise bandwidth B_L, Hz (at most {design.MAX_BT} x sample rate); "
                         "required unless --suggest")
     p.add_argument("--damping", type=float, default=0.707, metavar="Z",
@@ -61,16 +62,16 @@ def register(subparsers):
     p.add_argument("--modulation-index", type=float, metavar="RAD",
                    help=f"residual carrier (--power 1 only): phase-modulation index of bi-phase data, "
                         f"0..{design.MAX_MODULATION_INDEX} rad; the carrier keeps cos^2 of the power")
-    p.add_argument("--offset", type=float, metavar="HZ",
+    p.add_argument("--offset", type=si_number, metavar="HZ",
                    help="carrier frequency offset to acquire, Hz: acquisition time with the blocks' spectral "
                         "aid (their default) and natural pull-in without it")
-    p.add_argument("--freq-step", type=float, metavar="HZ",
+    p.add_argument("--freq-step", type=si_number, metavar="HZ",
                    help="sudden carrier frequency step while locked, Hz: whether the loop follows it, peak "
                         "phase error, and the natural pull-in beyond the pull-out limit")
     p.add_argument("--pull-in-budget", type=float, default=DEFAULT_PULL_IN_BUDGET_S, metavar="S",
                    help="pull-in time the loop may take on its own before an acquisition aid is "
                         f"called for, s (default {DEFAULT_PULL_IN_BUDGET_S:g})")
-    p.add_argument("--doppler-rate", type=float, metavar="HZ_PER_S",
+    p.add_argument("--doppler-rate", type=si_number, metavar="HZ_PER_S",
                    help="carrier frequency ramp, Hz/s: enables the steady-state ramp error")
     p.add_argument("--plot", metavar="FILE.png",
                    help="write phase-step, frequency-step and closed-loop magnitude plots to this PNG file")

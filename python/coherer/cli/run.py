@@ -12,35 +12,13 @@ import os
 import sys
 from pathlib import Path
 
-from . import UserError
+from . import UserError, errors
 
-#: Long-option names of the loop parameters, for error messages.
-_OPTION_NAMES = {"noise_bw_hz": "--noise-bw", "damping": "--damping", "power": "--power",
-                 "loop_order": "--loop-order", "window": "--window", "sample_rate": "sample rate"}
+# --- argument types (argparse turns their ArgumentTypeError into exit 2) ------------------
 
-
-# --- argument types (argparse turns their ValueError into exit 2) ------------------------
-
-def positive_float(text):
-    """A finite number > 0."""
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
-    if not v > 0 or v == float("inf"):
-        raise argparse.ArgumentTypeError(f"must be a positive number, got {text}")
-    return v
-
-
-def finite_float(text):
-    """Any finite number."""
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
-    if v != v or abs(v) == float("inf"):
-        raise argparse.ArgumentTypeError(f"must be a finite number, got {text}")
-    return v
+#: Rates and frequencies accept k, M and G suffixes: 250k, 2.4M (see cli.errors.si_number).
+positive_float = errors.positive_number
+finite_float = errors.finite_number
 
 
 def int_in(lo, hi):
@@ -158,10 +136,8 @@ def check_settings(settings, sample_rate, num_samples):
 
 
 def _option_message(msg):
-    name = msg.split(" ", 1)[0]
-    if name in _OPTION_NAMES:
-        return f"{_OPTION_NAMES[name]}: {msg}"
-    return msg
+    """A library error message in the words of the command line (option names)."""
+    return errors.option_wording(msg, sample_rate_option=False)
 
 
 def open_input(args):
@@ -198,20 +174,34 @@ def process(rec, settings, out, events_path=None, table_limit=None):
     return result
 
 
+#: Locked intervals described one by one in the summary line; beyond this the line gives
+#: the first few and the count (every interval is in summary.json and the events).
+SUMMARY_INTERVALS = 4
+
+
 def summary_line(result):
-    """One line: locked time, first lock, offset, slips."""
+    """One line: locked time, each locked interval (start-end, mean offset, Es/N0), slips."""
     fs = result.recording.sample_rate
     ivs = result.interval_summaries()
     locked = sum(iv["end_sample"] - iv["start_sample"] for iv in ivs) / fs
     slips = sum(e["slips"] for e in result.events if e["event"] == "cycle_slip")
     n_slip = sum(1 for e in result.events if e["event"] == "cycle_slip")
-    text = (f"locked {locked:.2f} s of {result.num_samples / fs:.2f} s in {len(ivs)} interval(s); "
-            f"{n_slip} cycle-slip event(s), net {slips:+d} x 2pi/{result.settings.power}")
-    if ivs and "freq_hz" in ivs[0]:
-        text += f"; first lock at {ivs[0]['start_s']:.3f} s, mean offset {ivs[0]['freq_hz']:+.2f} Hz"
-        if "esn0_db" in ivs[0]:
-            text += f", Es/N0 {ivs[0]['esn0_db']:.1f} dB"
-    return text
+    text = f"locked {locked:.2f} s of {result.num_samples / fs:.2f} s"
+    if not ivs:
+        text += " (never locked)"
+    else:
+        parts = []
+        for i, iv in enumerate(ivs[:SUMMARY_INTERVALS]):
+            part = f"#{i + 1} {iv['start_sample'] / fs:.3f}-{iv['end_sample'] / fs:.3f} s"
+            if "freq_hz" in iv:
+                part += f" offset {iv['freq_hz']:+.2f} Hz"
+            if "esn0_db" in iv:
+                part += f" Es/N0 {iv['esn0_db']:.1f} dB"
+            parts.append(part)
+        more = len(ivs) - len(parts)
+        text += (f" in {len(ivs)} interval(s): " + "; ".join(parts)
+                 + (f"; and {more} more (see the events)" if more else ""))
+    return text + f"; {n_slip} cycle-slip event(s), net {slips:+d} x 2pi/{result.settings.power}"
 
 
 def annotations(result):
@@ -265,6 +255,8 @@ def main(args):
         if not os.access(rec.meta_path, os.W_OK) or not os.access(rec.meta_path.parent, os.W_OK):
             raise UserError(f"--annotate: {rec.meta_path} or its folder is not writable")
 
+    from .._warmup import COMMAND_GROUPS, prepare
+    prepare(COMMAND_GROUPS["run"])          # a cold kernel cache: one note, compile now
     try:
         with clean_stdout() as out:
             result = process(rec, settings, out, args.events)

@@ -42,3 +42,8 @@ cat > "$VENV/bin/coherer" <<SH
 exec "$PWD/$VENV/bin/python" -m gnuradio.coherer "\$@"
 SH
 chmod +x "$VENV/bin/coherer"
+
+# Compile the numba signal kernels now, into the cache the source tree loads them from
+# (python/coherer/__pycache__), so that no command stops to compile on its first run.
+# Quick when they are already compiled; a few minutes on a fresh checkout.
+"$VENV/bin/python" -m gnuradio.coherer._warmup

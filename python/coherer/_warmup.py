@@ -197,7 +197,6 @@ def main(argv=None):
         print("not cached: " + (", ".join(cold) if cold else "none"))
         return 1 if cold else 0
     if not cold:
-        print(f"signal kernels already compiled ({', '.join(groups)})", file=sys.stderr)
         return 0
     workers = min(len(cold), os.cpu_count() or 1)
     print(f"compiling signal kernels ({', '.join(cold)}), about {estimate_s(cold, workers)} s",

@@ -337,6 +337,21 @@ def _sigmf_version():
     return sigmf.__specification__
 
 
+def _umask():
+    """The process umask (read from /proc where possible: setting it to read it back
+    would briefly change it for every thread)."""
+    try:
+        with open("/proc/self/status") as f:
+            for line in f:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def _atomic_write_json(path, obj):
     """Write JSON to a temporary file in the same folder, then rename it over ``path``."""
     path = Path(path)
@@ -347,8 +362,9 @@ def _atomic_write_json(path, obj):
             f.write("\n")
             f.flush()
             os.fsync(f.fileno())
-        if path.exists():
-            os.chmod(tmp, path.stat().st_mode & 0o777)
+        # mkstemp makes the file 0600; give it the existing file's mode, or what a new
+        # file gets under the umask (as the data file written next to it)
+        os.chmod(tmp, path.stat().st_mode & 0o7777 if path.exists() else 0o666 & ~_umask())
         os.replace(tmp, path)
     except BaseException:
         try:

@@ -28,6 +28,30 @@ LOCK_COLOUR = "#cfe8cf"
 SLIP_COLOUR = "#c0392b"
 
 
+#: Plot file formats, by file-name extension (what matplotlib writes for each).
+PLOT_FORMATS = {".png": "png", ".pdf": "pdf", ".svg": "svg"}
+
+
+class PlotFormatError(ValueError):
+    """A plot file name whose extension names no supported format."""
+
+
+def plot_format(path):
+    """The format a plot written to ``path`` gets, from its extension (``x.pdf`` -> "pdf");
+    PlotFormatError for any other extension."""
+    ext = Path(path).suffix.lower()
+    if ext not in PLOT_FORMATS:
+        shown = f"extension {ext!r}" if ext else "no extension"
+        raise PlotFormatError(f"{path}: {shown}; a plot file must end in "
+                              + ", ".join(PLOT_FORMATS))
+    return PLOT_FORMATS[ext]
+
+
+def save_figure(fig, path, dpi=100):
+    """Write ``fig`` to ``path`` in the format its extension names (PNG, PDF or SVG)."""
+    fig.savefig(path, format=plot_format(path), dpi=dpi)
+
+
 def _finite(x):
     """JSON-safe float: None for NaN/Inf."""
     x = float(x)
@@ -178,7 +202,7 @@ def plot_timeline(result, path, truth=None, title=None):
     ax.set_title("Signal quality: M2M4 Es/N0 per window (values below -20 dB drawn at -20 dB)")
     ax.legend(loc="lower right", fontsize=8)
     ax.grid(alpha=0.3)
-    fig.savefig(path, dpi=100)
+    save_figure(fig, path)
     plt.close(fig)
 
 
@@ -218,7 +242,7 @@ def plot_constellation(result, path, title=None):
         ax.set_title(name)
         ax.legend(loc="upper right", fontsize=8)
         ax.grid(alpha=0.3)
-    fig.savefig(path, dpi=100)
+    save_figure(fig, path)
     plt.close(fig)
 
 
@@ -238,4 +262,4 @@ def write_report(result, folder, truth=None, extra=None, title=None):
     return summary
 
 
-__all__ = ["summarise", "write_json", "plot_timeline", "plot_constellation", "write_report"]
+__all__ = ["PLOT_FORMATS", "PlotFormatError", "plot_format", "save_figure", "summarise", "write_json", "plot_timeline", "plot_constellation", "write_report"]

@@ -96,6 +96,18 @@ def _parse(parser, argv):
     return args
 
 
+def _check_plot_name(args):
+    """A ``--plot FILE`` must name a format by its extension (.png, .pdf, .svg): checked
+    before any work is done."""
+    path = getattr(args, "plot", None)
+    if path:
+        from ..report import PlotFormatError, plot_format
+        try:
+            plot_format(path)
+        except PlotFormatError as exc:
+            raise UserError(f"--plot {exc}") from None
+
+
 def _stdout_gone():
     """Point file descriptor 1 at /dev/null after the reader went away, so that
     nothing further (including the interpreter's final flush) fails on it."""
@@ -118,6 +130,7 @@ def main(argv=None):
     try:
         parser = build_parser()
         args = _parse(parser, argv)
+        _check_plot_name(args)
         return int(args.func(args) or EXIT_OK)
     except UserError as exc:
         raw_rate = getattr(args, "sample_rate", None) is not None or getattr(args, "command", "") == "design"

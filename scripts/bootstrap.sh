@@ -5,7 +5,8 @@ set -euo pipefail
 cd "$(dirname "$0")/.."
 
 DEBS=(gnuradio python3-numba python3-scipy python3-pytest python3-pytest-timeout
-      python3-hypothesis python3-matplotlib python3-venv python3-pip gcc make cmake xvfb x11-apps)
+      python3-hypothesis python3-matplotlib python3-jsonschema python3-defusedxml
+      python3-venv python3-pip gcc make cmake xvfb x11-apps)
 missing=()
 for pkg in "${DEBS[@]}"; do
   dpkg-query -W -f='${Status}' "$pkg" 2>/dev/null | grep -q "install ok installed" || missing+=("$pkg")

@@ -394,3 +394,14 @@ def merge_annotations(meta_path, annotations):
     _validate_meta(f"{meta_path} (with the new annotations)", meta)
     _atomic_write_json(meta_path, meta)
     return meta
+
+
+def read_samples(rec, start, count):
+    """``count`` samples (complex64) of recording ``rec`` from sample ``start`` on (fewer at
+    the end of the file)."""
+    start = max(0, int(start))
+    count = max(0, min(int(count), rec.num_samples - start))
+    fmt = rec.fmt
+    raw = np.fromfile(rec.data_path, dtype=fmt.component_dtype, count=2 * count,
+                      offset=rec.data_offset + start * fmt.sample_bytes)
+    return fmt.to_complex(raw)

@@ -92,7 +92,8 @@ def summarise(result):
         },
         "settings": {
             "power": st.power, "noise_bw_hz": st.noise_bw_hz, "damping": st.damping,
-            "loop_order": st.loop_order, "window": st.window, "freq_guess_hz": st.freq_guess_hz,
+            "loop_order": st.loop_order, "window": result.window or st.window,
+            "requested_window": st.window, "freq_guess_hz": st.freq_guess_hz,
             "lock_threshold": result.thresholds[0], "unlock_threshold": result.thresholds[1],
         },
         "loop": {"bt": d.bt, "actual_bt": d.actual_bt, "natural_frequency_rad_s": d.natural_frequency,
@@ -107,6 +108,7 @@ def summarise(result):
             "loop_slip_tags_while_unlocked": result.slips_outside_lock,
             "intervals": intervals,
         },
+        "symbol_timing": result.timing.as_dict() if result.timing is not None else None,
         "events": result.events,
         "wall_time_s": result.wall_s,
     }

@@ -113,8 +113,7 @@ def judge(result, sc):
         add(f"Es/N0, {st.name}", esn0, st.esn0_db, ESN0_TOL_DB, "dB",
             esn0 is not None and abs(esn0 - st.esn0_db) <= ESN0_TOL_DB)
         rms = float(np.sqrt(np.mean(phase_err[sel] ** 2))) if phase_err is not None and sel.any() else None
-        jitter = np.sqrt(design.phase_error_variance(m, design.db_to_linear(st.esn0_db),
-                                                     result.loop_design.actual_bt))
+        jitter = result.predicted_phase_rms_rad(st.esn0_db)   # the designer, for this signal
         ramp = result.loop_design.ramp_phase_error(sc.drift_hz_per_s)
         predicted = np.hypot(jitter, ramp)
         note = f"jitter {degrees(jitter):.2f} deg (+) drift error {degrees(abs(ramp)):.2f} deg"

@@ -55,6 +55,10 @@ def add_loop_options(p, power_required=True, noise_bw_default=None):
                    help="loop order 1, 2 or 3 (3 follows a Doppler ramp; default 2)")
     g.add_argument("--window", type=int_in(MIN_WINDOW, MAX_WINDOW), default=1024, metavar="N",
                    help=f"lock-detector window, samples, {MIN_WINDOW}..{MAX_WINDOW} (default 1024)")
+    g.add_argument("--symbol-rate", type=positive_float, default=None, metavar="HZ",
+                   help="symbol rate, symbols/s: the lock detector then works on symbol-spaced "
+                        "samples (default: estimated from the recording; none found = one "
+                        "sample per symbol)")
     g.add_argument("--freq-guess", type=finite_float, default=0.0, metavar="HZ",
                    help="where the NCO starts, Hz from the capture centre (default 0; wide "
                         "acquisition finds offsets up to +-sample rate/(2M) anyway)")
@@ -114,7 +118,8 @@ def settings_from_args(args):
     from ..receiver import ReceiverSettings
     return ReceiverSettings(power=args.power, noise_bw_hz=args.noise_bw, damping=args.damping,
                             loop_order=args.loop_order, window=args.window,
-                            freq_guess_hz=args.freq_guess)
+                            freq_guess_hz=args.freq_guess,
+                            symbol_rate_hz=getattr(args, "symbol_rate", None))
 
 
 def check_settings(settings, sample_rate, num_samples):
@@ -130,6 +135,9 @@ def check_settings(settings, sample_rate, num_samples):
     if abs(settings.freq_guess_hz) > limit:
         raise UserError(f"--freq-guess must be within +-sample rate/(2M) = +-{limit:g} Hz, "
                         f"got {settings.freq_guess_hz:g}")
+    if settings.symbol_rate_hz is not None and not sample_rate / 64 <= settings.symbol_rate_hz <= sample_rate:
+        raise UserError(f"--symbol-rate must be within sample rate/64 .. sample rate = "
+                        f"{sample_rate / 64:g} .. {sample_rate:g} symbols/s, got {settings.symbol_rate_hz:g}")
     if settings.window > num_samples:
         raise UserError(f"--window {settings.window} is longer than the recording "
                         f"({num_samples} samples)")
@@ -164,14 +172,39 @@ def process(rec, settings, out, events_path=None, table_limit=None):
         raise UserError(_option_message(str(exc))) from None
     finally:
         bar.close()
-    if result.num_samples < rec.num_samples:
-        print(f"coherer: note: the last {rec.num_samples - result.num_samples} sample(s), less than "
-              f"one {settings.window}-sample detector window, were not processed", file=sys.stderr)
     out.write(events_table(result.events, rec.center_freq_hz, table_limit) + "\n")
+    out.write(timing_line(result) + "\n")
     out.write(summary_line(result) + "\n")
     if events_path:
-        report.write_json(events_path, result.events)
+        report.write_json(events_path, events_with_timing(result))
     return result
+
+
+def timing_line(result):
+    """One line: the symbol rate the lock detector worked with, and where it came from."""
+    t = result.timing
+    if t.source == "none":
+        return f"symbol rate: none detected, one sample per symbol ({t.note})"
+    how = "given" if t.source == "given" else f"estimated, line {t.line_to_floor_db:.1f} dB over the floor"
+    return (f"symbol rate: {t.symbol_rate_hz:.6g} symbols/s ({how}); lock detector at "
+            f"{t.samples_per_symbol} samples per symbol, window {result.window} samples")
+
+
+def events_with_timing(result):
+    """The events list; lock and unlock events also say which symbol rate the detector
+    used (``symbol_rate_hz``, absent when none was found), ``samples_per_symbol`` and
+    ``symbol_rate_source`` (given, estimated, none)."""
+    t = result.timing
+    out = []
+    for e in result.events:
+        e = dict(e)
+        if e["event"] in ("lock", "unlock"):
+            if t.symbol_rate_hz is not None:
+                e["symbol_rate_hz"] = t.symbol_rate_hz
+            e["samples_per_symbol"] = t.samples_per_symbol
+            e["symbol_rate_source"] = t.source
+        out.append(e)
+    return out
 
 
 #: Locked intervals described one by one in the summary line; beyond this the line gives

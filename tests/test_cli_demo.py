@@ -1,5 +1,5 @@
 # SPDX-License-Identifier: GPL-3.0-or-later
-"""``coherer demo`` end to end, in a subprocess as a user would (issue 6 item 2).
+"""``coherer demo`` end to end, in a subprocess as a user would.
 
 The demo runs once per module; the tests check its files and compare its
 numbers with the scenario's truth (coherer.scenario, parameters only) and with
@@ -43,6 +43,24 @@ def test_demo_exits_0_and_writes_everything(demo):
     assert check.returncode == 0 and "valid" in check.stdout, check.stderr
     assert "verdict" in proc.stdout
     assert not any(":info:" in ln or ":debug:" in ln for ln in proc.stdout.splitlines())
+
+
+def test_demo_files_get_the_same_mode(demo):
+    """The metadata is written through a temporary file; it must still get the mode a new
+    file gets under the umask, as the data file written next to it does."""
+    import os
+    _, out = demo
+    mask = os.umask(0o022)
+    os.umask(mask)
+    meta = (out / "balloon_downlink.sigmf-meta").stat().st_mode & 0o777
+    data = (out / "balloon_downlink.sigmf-data").stat().st_mode & 0o777
+    assert meta == data == 0o666 & ~mask, (oct(meta), oct(data))
+
+
+def test_demo_shows_no_internal_bookkeeping(demo):
+    import re
+    proc, _ = demo
+    assert not re.search(r"\bissues? ?#?\d|acceptance", proc.stdout + proc.stderr, re.IGNORECASE)
 
 
 def test_demo_recording_matches_scenario(demo, scenario):

@@ -679,3 +679,22 @@ def test_written_metadata_gets_umask_mode_or_keeps_the_old_one(tmp_path, umask):
         assert json.loads(path.read_text()) == {"a": 2}
     finally:
         os.umask(old)
+
+
+def test_compile_note_on_a_cold_cache_only(tmp_path):
+    """An empty numba cache: one line saying the kernels are being compiled, then the run;
+    the next run with that cache says nothing about compiling."""
+    import subprocess
+    from clirunner import command, env
+    meta = write_sigmf(tmp_path, "pass", encode(bpsk(seed=11), "cf32_le"))
+    e = env()
+    e["NUMBA_CACHE_DIR"] = str(tmp_path / "numba_cache")
+    runs = [subprocess.run(command("run", meta, *LOOP), env=e, capture_output=True, text=True,
+                           timeout=1800, stdin=subprocess.DEVNULL) for _ in range(2)]
+    for proc in runs:
+        assert proc.returncode == 0, proc.stderr
+    notes = [ln for ln in runs[0].stderr.splitlines() if "compiling" in ln]
+    assert len(notes) == 1, runs[0].stderr
+    assert re.fullmatch(r"coherer: compiling signal kernels, first run only, about \d+ s", notes[0])
+    assert "compiling" not in runs[1].stderr, runs[1].stderr
+    assert runs[0].stdout == runs[1].stdout

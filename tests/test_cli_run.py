@@ -698,3 +698,15 @@ def test_compile_note_on_a_cold_cache_only(tmp_path):
     assert re.fullmatch(r"coherer: compiling signal kernels, first run only, about \d+ s", notes[0])
     assert "compiling" not in runs[1].stderr, runs[1].stderr
     assert runs[0].stdout == runs[1].stdout
+
+
+def test_option_wording_of_library_messages():
+    from gnuradio.coherer.cli.errors import option_wording
+    assert option_wording("noise_bw_hz must be > 0 Hz, got -5.0") == "--noise-bw must be > 0 Hz, got -5.0"
+    assert option_wording("loop_order must be 1, 2 or 3, got 4") == "--loop-order must be 1, 2 or 3, got 4"
+    assert option_wording("damping must be in (0, 10], got 11.0") == "--damping must be in (0, 10], got 11.0"
+    assert (option_wording("noise_bw_hz must be at most 0.1 * sample_rate = 960 Hz, got 2000.0", False)
+            == "--noise-bw must be at most 0.1 * the sample rate = 960 Hz, got 2000.0")
+    # names inside other names (SigMF fields) and ordinary words are left alone
+    assert option_wording("core:sample_rate must be present") == "core:sample_rate must be present"
+    assert option_wording("a power of two") == "a power of two"

@@ -88,7 +88,9 @@ OPTION_OF = {
 SUBJECT_OPTION_OF = {"power": "--power", "damping": "--damping", "window": "--window",
                      "format": "--format"}
 
-_NAME = re.compile(r"\b(" + "|".join(sorted(map(re.escape, OPTION_OF), key=len, reverse=True)) + r")\b(=?)")
+# not inside a longer name: "core:sample_rate" (a SigMF field) stays as it is
+_NAME = re.compile(r"(?<![\w:.\-])(" + "|".join(sorted(map(re.escape, OPTION_OF), key=len, reverse=True))
+                   + r")\b(=?)")
 
 
 def option_wording(message, sample_rate_option=True):

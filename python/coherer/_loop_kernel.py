@@ -50,7 +50,14 @@ Lock indicator (internal, drives acquisition): the phase-only statistic
 counted from the start of the stream, decided by the same rule as the lock
 detector (``coherer.lockstat.update_lock``: a threshold referenced to the
 measured quadrature projection, so the false-lock probability holds on
-band-limited noise too).
+band-limited noise too). A loop partly follows band-limited noise (it tracks
+the slow part of the noise's M-th power phase), which biases the projection of
+its own output toward lock even on noise alone; so the statistic is taken
+against a free-running phasor instead: the NCO's M-th power phasor at the start
+of each lock window, advanced at the frequency register's value of that moment.
+On noise it is independent of the window's samples, so the statistic has its
+noise-only distribution; locked it differs from the NCO only by the NCO's drift
+within one window.
 
 Cycle slips: a slip is a step of 2*pi/M in the NCO phase relative to the
 carrier. Two trackers watch for it, and the loop SNR 1/(B_L T V_M) estimated from
@@ -110,43 +117,47 @@ S_M4 = 4         # exponential average of |x|^4
 S_MW = 5         # exponential average of 1 (bias correction of M2, M4)
 S_GAPS = 6       # count of gap samples (non-finite or zero) seen
 S_LAST_STEP = 7  # proportional part K1 e of the last NCO step, rad/sample
-S_LOCK_SUM = 8   # lock statistic: running sum of cos(M arg y) in this window
-S_LOCK_N = 9     # valid samples in this window
-S_LOCK_POS = 10  # samples into this window
-S_LOCKED = 11    # 1.0 locked, 0.0 not
-S_METRIC = 12    # statistic of the last complete window
-S_REF_R = 13     # slip tracker residual: unwrapped NCO phase minus reference, rad
-S_REF_F = 14     # reference frequency, rad/sample
-S_REF_A = 15     # reference frequency rate, rad/sample^2
-S_SLIPS = 16     # signed slips declared so far
+S_LOCK_N = 8     # valid samples in this window
+S_LOCK_POS = 9  # samples into this window
+S_LOCKED = 10    # 1.0 locked, 0.0 not
+S_METRIC = 11    # statistic of the last complete window
+S_REF_R = 12     # slip tracker residual: unwrapped NCO phase minus reference, rad
+S_REF_F = 13     # reference frequency, rad/sample
+S_REF_A = 14     # reference frequency rate, rad/sample^2
+S_SLIPS = 15     # signed slips declared so far
 S_FAST_M2 = 17   # fast exponential average of |x|^2 (level-step detector)
-S_WIN_STEPS = 18 # sum of NCO steps in this lock window, rad
-S_PREV_STEP = 19 # mean NCO step of the previous window, rad/sample
-S_REF_AGE = 20   # lock windows since the slip reference started
-S_LP_RE = 21     # low-passed unit detector phasor d/|d| (strong-signal slip tracker)
-S_LP_IM = 22
-S_PSI = 23       # unwrapped angle of the low-passed phasor, rad (M domain)
-S_PSI_LAST = 24  # its last wrapped value
-S_PSI_REF = 25   # the detector angle's present stable point 2*pi*k, rad
-S_SLIP_POS = 26  # samples since the angle was last evaluated
-S_STRONG = 27    # 1.0 when the last window's loop SNR was at least STRONG_LOOP_SNR
-S_PH_RE = 28     # NCO phasor e^{j theta^} (recursion between exact resyncs)
-S_PH_IM = 29
-S_PM_RE = 30     # its M-th power e^{j M theta^}, advanced alongside
-S_PM_IM = 31
-S_NCO_REF = 32   # frequency register (rad/sample) at the last resync
-S_NCO_LEFT = 33  # samples until the next exact resync
-S_NORM_LEFT = 34 # samples until the detector normalisation is recomputed
-S_INV_RMS = 35   # 1/sqrt(M2) in use, 1/amplitude
-S_INV_NORM = 36  # 1/(S/M2)^(M/2) in use
-S_CAP = 37       # limiter threshold in use, power units (0: no moments yet)
-S_LOCK_Q = 38    # lock statistic: running sum of the quadrature projection in this window
-S_LINE_RE = 39   # exponential average of the detector d: the M-th power line (M-domain phasor)
-S_LINE_IM = 40
-S_LINE_W = 41    # its weight since the last restart (bias correction)
-S_LINE_P = 42    # exponential average of |d|^2 (the line estimate's noise scale)
-S_LINE_ON = 43   # 1.0 while the detector is normalised by the line estimate
-STATE_SIZE = 44
+S_WIN_STEPS = 17 # sum of NCO steps in this lock window, rad
+S_PREV_STEP = 18 # mean NCO step of the previous window, rad/sample
+S_REF_AGE = 19   # lock windows since the slip reference started
+S_LP_RE = 20     # low-passed unit detector phasor d/|d| (strong-signal slip tracker)
+S_LP_IM = 21
+S_PSI = 22       # unwrapped angle of the low-passed phasor, rad (M domain)
+S_PSI_LAST = 23  # its last wrapped value
+S_PSI_REF = 24   # the detector angle's present stable point 2*pi*k, rad
+S_SLIP_POS = 25  # samples since the angle was last evaluated
+S_STRONG = 26    # 1.0 when the last window's loop SNR was at least STRONG_LOOP_SNR
+S_PH_RE = 27     # NCO phasor e^{j theta^} (recursion between exact resyncs)
+S_PH_IM = 28
+S_PM_RE = 29     # its M-th power e^{j M theta^}, advanced alongside
+S_PM_IM = 30
+S_NCO_REF = 31   # frequency register (rad/sample) at the last resync
+S_NCO_LEFT = 32  # samples until the next exact resync
+S_NORM_LEFT = 33 # samples until the detector normalisation is recomputed
+S_INV_RMS = 34   # 1/sqrt(M2) in use, 1/amplitude
+S_INV_NORM = 35  # 1/(S/M2)^(M/2) in use
+S_CAP = 36       # limiter threshold in use, power units (0: no moments yet)
+S_LINE_RE = 37   # exponential average of the detector d: the M-th power line (M-domain phasor)
+S_LINE_IM = 38
+S_LINE_W = 39    # its weight since the last restart (bias correction)
+S_LINE_P = 40    # exponential average of |d|^2 (the line estimate's noise scale)
+S_LINE_ON = 41   # 1.0 while the detector is normalised by the line estimate
+S_FREE_RE = 42   # free-running reference e^{j M theta~}: the NCO's M-th power phasor at the
+S_FREE_IM = 43   # start of the lock window, advanced at the frequency register's value then
+S_FREE_STEP_RE = 44   # its step per sample, e^{j M acc1}
+S_FREE_STEP_IM = 45
+S_FREE_I = 46    # window sums of (y/|y|)^M against the free-running reference
+S_FREE_Q = 47
+STATE_SIZE = 48
 
 # params[] layout ------------------------------------------------------------------
 P_K1 = 0
@@ -227,7 +238,7 @@ def _rotate(q_re, q_im, v):
     return q_re * c - q_im * s, q_re * s + q_im * c
 
 
-@njit(nogil=True, cache=True, fastmath={'contract'}, error_model='numpy')
+@njit(nogil=True, cache=True, error_model='numpy')
 def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count, lock_at, lock_to,
                    lock_freq, stop_first, stop_every, state, params, lock_ref, on_table, off_table,
                    power):
@@ -287,8 +298,12 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     mw = state[S_MW]
     gaps = state[S_GAPS]
     last_step = state[S_LAST_STEP]
-    lock_sum = state[S_LOCK_SUM]
-    lock_q = state[S_LOCK_Q]
+    free_re = state[S_FREE_RE]
+    free_im = state[S_FREE_IM]
+    fstep_re = state[S_FREE_STEP_RE]
+    fstep_im = state[S_FREE_STEP_IM]
+    free_i = state[S_FREE_I]
+    free_q = state[S_FREE_Q]
     line_re = state[S_LINE_RE]
     line_im = state[S_LINE_IM]
     line_w = state[S_LINE_W]
@@ -356,6 +371,14 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             nco_left = NCO_RESYNC
         nco_left -= 1.0
         norm_left -= 1.0
+        if lock_pos == 0.0:
+            # a lock window starts: the noise reference of the lock rule is measured against
+            # a reference that does not follow the noise during the window (the loop's own
+            # output does, which would shrink its quadrature part on noise)
+            free_re = pm_re
+            free_im = pm_im
+            fstep_re = np.cos(power * acc1)
+            fstep_im = np.sin(power * acc1)
         c = ph_re
         s = ph_im
         # the next phasors up to this sample's correction (known before the detector)
@@ -456,13 +479,15 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             if mag > 0.0:
                 inv_mag = 1.0 / mag
                 ur = d.real * inv_mag
-                lock_sum += ur
-                lock_q += d.imag * inv_mag
                 lock_n += 1.0
+                free_i += (z.real * free_re + z.imag * free_im) * inv_mag
+                free_q += (z.imag * free_re - z.real * free_im) * inv_mag
                 lp_re += lp_beta * (ur - lp_re)
                 lp_im += lp_beta * (d.imag * inv_mag - lp_im)
             if want_err:
                 e_theta = np.arctan2(d.imag, d.real) * inv_power
+        free_re, free_im = (free_re * fstep_re - free_im * fstep_im,
+                            free_re * fstep_im + free_im * fstep_re)
         if want_ref:
             ref[n] = complex(c, s)
         if want_freq:
@@ -542,9 +567,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             prev_step = mean_step
             win_steps = 0.0
             if lock_n >= 0.5 * lock_window:
-                metric = lock_sum / lock_window
-                now = update_lock(locked > 0.0, metric, lock_q / lock_window, lock_ref,
-                                  on_table, off_table)
+                metric = free_i / lock_window
+                now = update_lock(locked > 0.0, metric, metric, free_q / lock_window,
+                                  lock_ref, on_table, off_table)
                 if locked > 0.0:
                     locked = 1.0 if now else 0.0
                 elif now:
@@ -565,8 +590,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                 lock_to[n_locks] = 1 if locked > 0.0 else 0
                 lock_freq[n_locks] = acc1 + step_in_freq * last_step
                 n_locks += 1
-            lock_sum = 0.0
-            lock_q = 0.0
+            free_i = 0.0
+            free_q = 0.0
             lock_n = 0.0
             lock_pos = 0.0
             if mw >= MW_SETTLED:      # keep the last verdict while the moments restart
@@ -588,8 +613,12 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_MW] = mw
     state[S_GAPS] = gaps
     state[S_LAST_STEP] = last_step
-    state[S_LOCK_SUM] = lock_sum
-    state[S_LOCK_Q] = lock_q
+    state[S_FREE_RE] = free_re
+    state[S_FREE_IM] = free_im
+    state[S_FREE_STEP_RE] = fstep_re
+    state[S_FREE_STEP_IM] = fstep_im
+    state[S_FREE_I] = free_i
+    state[S_FREE_Q] = free_q
     state[S_LINE_RE] = line_re
     state[S_LINE_IM] = line_im
     state[S_LINE_W] = line_w

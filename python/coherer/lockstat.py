@@ -25,27 +25,34 @@ when successive samples are independent. A real receiver's noise is band-limited
 correlated and the window mean of N samples has a larger variance,
 ``(1/(2N)) sum_tau rho_M(tau)``: a threshold set for white noise then declares
 false locks far more often than stated (1e-3 to 1e-2 per window instead of 1e-6
-at 4-8 samples per symbol). The quadrature projection
-``Q = (1/N) sum sin(M (arg y - point_angle))`` has on noise alone the same
-distribution as P whatever the noise spectrum (arg y is uniform and the noise is
-circular), so the rms of Q over the last K windows measures the null scale of P
-on the noise actually present. The scale used is the lower median of the
-squared Q of the last K windows rather than their mean, so that the windows of
-a strong signal still rotating against the reference (a loop pulling in),
-whose Q is large, cannot hold the threshold up for K windows after lock: they
-are outvoted as soon as they are a minority. With the Gaussian approximation
-of the window means, the factor c_k with ``P(P >= c_k scale) = P_FA`` for k
-windows follows from the distribution of that order statistic by numerical
-integration (``coherer._lock_factors``). The lock threshold is
+at 4-8 samples per symbol). On noise alone the window mean W = P + jQ of
+``(y/|y|)^M e^{-j M point_angle}`` is circularly symmetric whatever the noise
+spectrum (arg y is uniform and the noise circular), so its component Q' in any
+direction chosen independently of the window has the same distribution as P:
+the spread of Q' over the earlier windows measures the null scale of P on the
+noise actually present. The direction is that of the mean phasor of the earlier
+windows (an average with weight DIRECTION_AVERAGING per window; the
+constellation axis until one exists): on noise it is random and independent of
+the window judged, and locked it is the loop's steady phase error, so a static
+error (a frequency ramp followed by a second-order loop) does not count as
+noise. The scale is the lower median of the squared Q' of the last K windows
+rather than their mean, so that the windows of a strong signal still rotating
+against the reference (a loop pulling in), whose Q' is large, cannot hold the
+threshold up for K windows after lock: they are outvoted as soon as they are a
+minority. With the Gaussian approximation of the window means, the factor c_k
+with ``P(P >= c_k scale) = P_FA`` for a scale from k windows follows from the
+distribution of that order statistic by numerical integration
+(``coherer._lock_factors``). The lock threshold is
 ``max(Qinv(P_FA)/sqrt(2N), c_k scale)`` (:func:`update_lock`): the white-noise
 value is a floor, the second term takes over on coloured noise. Referencing a
 detection threshold to the measured noise is constant-false-alarm practice
-(radar and satellite-navigation lock detectors; common practice). Locked, Q
+(radar and satellite-navigation lock detectors; common practice). Locked, Q'
 carries only the phase jitter and is small, which only lowers the threshold
 toward the white-noise floor. K = REFERENCE_WINDOWS = 96 windows (c_96 at 1e-6
 puts the threshold at 5.65 noise standard deviations, 19 % above the Gaussian
-4.75 for white noise); with fewer windows seen the factor for their number is
-used, so a noise-only start cannot declare lock early.
+4.75 for white noise); with fewer windows the factor for their number is used,
+and the first window of a stream never declares lock, so a noise-only start
+cannot declare lock early.
 
 Default thresholds (:func:`default_thresholds`, the white-noise floors): lock at
 ``P_FA = 1e-6`` per window, release at ``P_FA = 1e-2`` per window (a noise-only
@@ -101,6 +108,8 @@ DEFAULT_UNLOCK_P_FA = 1e-2
 REFERENCE_WINDOWS = _lock_factors.REFERENCE_WINDOWS
 #: Per-window probabilities for which noise-referenced thresholds are tabulated.
 NOISE_REFERENCED_P_FA = tuple(sorted(_lock_factors.FACTORS))
+#: Weight of a new window in the mean phasor whose direction the quadrature means are taken to.
+DIRECTION_AVERAGING = 0.5
 #: Weight of a new window in the per-phase power average that picks the timing phase.
 PHASE_AVERAGING = 0.125
 #: Reported Es/N0 is clamped to this range, dB (the estimate is +-inf at the extremes).
@@ -150,9 +159,9 @@ def threshold_table(window, p_fa, threshold=None):
 
 
 def new_noise_reference():
-    """An empty noise reference for :func:`update_lock`: [count, position, ring of
-    REFERENCE_WINDOWS squared quadrature means]."""
-    return np.zeros(REFERENCE_WINDOWS + 2)
+    """An empty noise reference for :func:`update_lock`: [count, position, direction
+    (2), ring of REFERENCE_WINDOWS squared quadrature means]."""
+    return np.zeros(REFERENCE_WINDOWS + 4)
 
 
 def default_thresholds(window):
@@ -360,40 +369,74 @@ def window_sums(x, power, rot_re, rot_im, window, sps, sums):
 
 # --- the lock decision (shared by the lock detector and the loops' indicator) ---------
 
+# layout of the noise reference: [count, position, direction re, direction im, ring...]
+_REF_COUNT, _REF_POS, _REF_DIR_RE, _REF_DIR_IM, _REF_RING = range(5)
+
+
 @njit(cache=True)
-def noise_scale(ref, q_mean):
-    """Push a window's quadrature mean ``q_mean`` into the noise reference ``ref``
-    (see :func:`new_noise_reference`) and return ``(scale, count)``: the square root
-    of the lower median of the squared quadrature means of the last ``count``
-    windows, this one included."""
-    k = ref.shape[0] - 2
-    count = int(ref[0])
-    pos = int(ref[1])
-    ref[2 + pos] = q_mean * q_mean
-    pos = (pos + 1) % k
-    if count < k:
-        count += 1
-    ref[0] = count
-    ref[1] = pos
-    values = np.sort(ref[2:2 + count])
+def noise_scale(ref):
+    """``(scale, count)`` of the noise reference ``ref`` (see :func:`new_noise_reference`):
+    the square root of the lower median of the squared quadrature means it holds, and
+    their number (0: no scale yet, scale 0)."""
+    count = int(ref[_REF_COUNT])
+    if count == 0:
+        return 0.0, 0
+    values = np.sort(ref[_REF_RING:_REF_RING + count])
     return np.sqrt(values[(count + 1) // 2 - 1]), count
 
 
 @njit(cache=True)
-def update_lock(locked, metric, q_mean, ref, on_table, off_table):
+def push_window(ref, i_mean, q_mean):
+    """Add a decided window (in-phase and quadrature means ``i_mean``, ``q_mean``) to the
+    noise reference ``ref``: its quadrature mean relative to the direction of the earlier
+    windows' mean phasor goes into the ring (relative to the constellation axis while
+    that direction is unknown), then the direction moves toward this window."""
+    k = ref.shape[0] - _REF_RING
+    dr = ref[_REF_DIR_RE]
+    di = ref[_REF_DIR_IM]
+    mag = np.sqrt(dr * dr + di * di)
+    q = q_mean
+    if mag > 0.0:
+        q = (q_mean * dr - i_mean * di) / mag     # Im((I + jQ) conj(dir) / |dir|)
+    count = int(ref[_REF_COUNT])
+    pos = int(ref[_REF_POS])
+    if np.isfinite(q):
+        ref[_REF_RING + pos] = q * q
+        ref[_REF_POS] = (pos + 1) % k
+        if count < k:
+            ref[_REF_COUNT] = count + 1
+    if np.isfinite(i_mean) and np.isfinite(q_mean):
+        ref[_REF_DIR_RE] = dr + DIRECTION_AVERAGING * (i_mean - dr)
+        ref[_REF_DIR_IM] = di + DIRECTION_AVERAGING * (q_mean - di)
+
+
+@njit(cache=True)
+def update_lock(locked, metric, ref_i, ref_q, ref, on_table, off_table):
     """Lock decision after one window: the shared rule of every lock indicator here.
 
-    ``metric`` and ``q_mean`` are the window's in-phase and quadrature means of
-    ``(y/|y|)^M rot``; ``ref`` the noise reference (updated here). A table ``t`` (from
-    :func:`threshold_table`) gives the threshold ``max(t[0], t[count] * scale)``:
-    t[0] for white noise, t[count] the factor for the measured null scale.
+    ``metric`` is the window's in-phase mean of ``(y/|y|)^M rot``; ``ref_i``, ``ref_q``
+    the window's mean phasor against the reference the noise is measured with (the
+    detector: ``metric`` and the quadrature mean; a loop: a reference that does not
+    follow the noise); ``ref`` the noise reference of the earlier windows (this window
+    is added to it afterwards, so the scale never contains the window it judges). A
+    table ``t`` (from :func:`threshold_table`) gives the threshold
+    ``max(t[0], t[k] * scale)`` with k the windows in the reference (no lock while it
+    is empty, unless the table holds a fixed threshold): t[0] for white noise, t[k]
+    the factor for the measured null scale.
     Unlocked -> locked when ``metric >= on``, locked -> unlocked when ``metric < off``
     (NaN unlocks). Returns the new state."""
-    rms, count = noise_scale(ref, q_mean)
+    scale, count = noise_scale(ref)
+    push_window(ref, ref_i, ref_q)
     if locked:
-        off = max(off_table[0], off_table[count] * rms)
+        if count == 0:
+            return metric >= off_table[0]
+        off = max(off_table[0], off_table[count] * scale)
         return metric >= off
-    on = max(on_table[0], on_table[count] * rms)
+    if count == 0:
+        if on_table[1] > 0.0:          # noise-referenced, and nothing measured yet
+            return False
+        return metric >= on_table[0]   # a fixed threshold
+    on = max(on_table[0], on_table[count] * scale)
     return metric >= on
 
 
@@ -432,7 +475,7 @@ def decide_windows(sums, count, symbols, sps, ref, phase_power, on_table, off_ta
                                                              s[SUM_M4] / s[SUM_VALID]))
         else:
             esn0_db_out[k] = np.nan
-        state = update_lock(state, metric[k], q_metric[k], ref, on_table, off_table)
+        state = update_lock(state, metric[k], metric[k], q_metric[k], ref, on_table, off_table)
         decisions[k] = state
         phases[k] = best
     return state
@@ -444,5 +487,5 @@ __all__ = [
     "c_m", "projection_variance", "detection_probability",
     "m2m4_esn0_scalar", "esn0_db_scalar", "m2m4_esn0", "esn0_db",
     "REFERENCE_WINDOWS", "threshold_table", "new_noise_reference",
-    "unit_projection", "window_sums", "noise_scale", "update_lock", "decide_windows",
+    "unit_projection", "window_sums", "noise_scale", "push_window", "update_lock", "decide_windows",
 ]

@@ -52,12 +52,13 @@ detector (``coherer.lockstat.update_lock``: a threshold referenced to the
 measured quadrature projection, so the false-lock probability holds on
 band-limited noise too). A loop partly follows band-limited noise (it tracks
 the slow part of the noise's M-th power phase), which biases the projection of
-its own output toward lock even on noise alone; so the statistic is taken
-against a free-running phasor instead: the NCO's M-th power phasor at the start
-of each lock window, advanced at the frequency register's value of that moment.
-On noise it is independent of the window's samples, so the statistic has its
-noise-only distribution; locked it differs from the NCO only by the NCO's drift
-within one window.
+its own output toward lock even on noise alone, mostly through the
+proportional path; so the statistic is taken against a reference phasor that
+does not follow the window's own samples: the NCO's M-th power phasor at the
+start of each lock window, advanced at the NCO's mean rate over the last
+window, extrapolated by its change between windows (so a frequency ramp is
+followed). Locked it differs from the NCO only by the NCO's jitter within the
+window.
 
 Cycle slips: a slip is a step of 2*pi/M in the NCO phase relative to the
 carrier. Two trackers watch for it, and the loop SNR 1/(B_L T V_M) estimated from
@@ -151,12 +152,12 @@ S_LINE_IM = 38
 S_LINE_W = 39    # its weight since the last restart (bias correction)
 S_LINE_P = 40    # exponential average of |d|^2 (the line estimate's noise scale)
 S_LINE_ON = 41   # 1.0 while the detector is normalised by the line estimate
-S_FREE_RE = 42   # free-running reference e^{j M theta~}: the NCO's M-th power phasor at the
-S_FREE_IM = 43   # start of the lock window, advanced at the frequency register's value then
-S_FREE_STEP_RE = 44   # its step per sample, e^{j M acc1}
-S_FREE_STEP_IM = 45
-S_FREE_I = 46    # window sums of (y/|y|)^M against the free-running reference
-S_FREE_Q = 47
+S_FREE_RE = 42   # reference e^{j M theta~} of the lock statistic: the NCO's M-th power phasor at
+S_FREE_IM = 43   # the start of the lock window, advanced at the NCO's rate over earlier windows
+S_FREE_I = 44    # window sums of (y/|y|)^M against the free-running reference
+S_FREE_Q = 45
+S_FREE_F = 46    # its step, rad/sample: the NCO's mean step over the last window, extrapolated
+S_FREE_A = 47    # its change per sample (the change of that mean between windows)
 STATE_SIZE = 48
 
 # params[] layout ------------------------------------------------------------------
@@ -300,9 +301,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     last_step = state[S_LAST_STEP]
     free_re = state[S_FREE_RE]
     free_im = state[S_FREE_IM]
-    fstep_re = state[S_FREE_STEP_RE]
-    fstep_im = state[S_FREE_STEP_IM]
     free_i = state[S_FREE_I]
+    free_f = state[S_FREE_F]
+    free_a = state[S_FREE_A]
     free_q = state[S_FREE_Q]
     line_re = state[S_LINE_RE]
     line_im = state[S_LINE_IM]
@@ -377,8 +378,6 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             # output does, which would shrink its quadrature part on noise)
             free_re = pm_re
             free_im = pm_im
-            fstep_re = np.cos(power * acc1)
-            fstep_im = np.sin(power * acc1)
         c = ph_re
         s = ph_im
         # the next phasors up to this sample's correction (known before the detector)
@@ -486,8 +485,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                 lp_im += lp_beta * (d.imag * inv_mag - lp_im)
             if want_err:
                 e_theta = np.arctan2(d.imag, d.real) * inv_power
-        free_re, free_im = (free_re * fstep_re - free_im * fstep_im,
-                            free_re * fstep_im + free_im * fstep_re)
+        # the reference phasor runs at the NCO's rate of the earlier windows
+        free_re, free_im = _rotate(free_re, free_im, power * free_f)
+        free_f += free_a
         if want_ref:
             ref[n] = complex(c, s)
         if want_freq:
@@ -565,6 +565,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             mean_step = win_steps / lock_window
             slope = (mean_step - prev_step) / lock_window
             prev_step = mean_step
+            free_f = mean_step + slope * (0.5 * lock_window + 0.5)
+            free_a = slope
             win_steps = 0.0
             if lock_n >= 0.5 * lock_window:
                 metric = free_i / lock_window
@@ -615,9 +617,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_LAST_STEP] = last_step
     state[S_FREE_RE] = free_re
     state[S_FREE_IM] = free_im
-    state[S_FREE_STEP_RE] = fstep_re
-    state[S_FREE_STEP_IM] = fstep_im
     state[S_FREE_I] = free_i
+    state[S_FREE_F] = free_f
+    state[S_FREE_A] = free_a
     state[S_FREE_Q] = free_q
     state[S_LINE_RE] = line_re
     state[S_LINE_IM] = line_im

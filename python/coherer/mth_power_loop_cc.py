@@ -241,6 +241,8 @@ class mth_power_loop_cc(gr.sync_block):
         st[K.S_REF_A] = 0.0
         st[K.S_WIN_STEPS] = 0.0
         st[K.S_PREV_STEP] = rad_per_sample
+        st[K.S_FREE_F] = rad_per_sample          # the lock statistic's reference follows too
+        st[K.S_FREE_A] = 0.0
 
     def _steer(self, sample):
         """End of an acquisition block: if unlocked, estimate the offset from z^M and steer.

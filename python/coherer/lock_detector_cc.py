@@ -267,8 +267,7 @@ class lock_detector_cc(gr.sync_block):
     def _window_sums(self, x, n):
         """Sums of the windows completed by ``x``: the one in progress (finished from a copy,
         so every window's sums come from one contiguous array, whatever the chunking), then
-        the whole windows inside ``x``; the rest is kept. Returns (sums, count, offset of the
-        first completed window's end in x)."""
+        the whole windows inside ``x``; the rest is kept. Returns (sums, count)."""
         w = self._window
         sums = self._buffers(n)[0]
         count = 0
@@ -279,7 +278,7 @@ class lock_detector_cc(gr.sync_block):
             self._fill += take
             used = take
             if self._fill < w:
-                return sums, 0, used
+                return sums, 0
             lockstat.window_sums(self._partial, self._power, *self._rot, w, self._sps, sums)
             count = 1
             self._fill = 0
@@ -292,14 +291,14 @@ class lock_detector_cc(gr.sync_block):
         if rest:
             self._partial[:rest] = x[n - rest:]
             self._fill = rest
-        return sums, count, used
+        return sums, count
 
     def _detect(self, x, n, held):
         """Decide the windows completed in ``x``; fill the held outputs, place tags, publish."""
         start = self.nitems_read(0)
         w = self._window
         first_end = (start // w + 1) * w - 1 - start  # relative index of the next window end
-        sums, k, _ = self._window_sums(x, n)
+        sums, k = self._window_sums(x, n)
         upstream = self._upstream_tags(n)
         if k == 0:
             for out, value in zip(held, (self._metric, self._esn0_db)):

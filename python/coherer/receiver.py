@@ -76,11 +76,14 @@ def symbol_timing(rec, settings):
     else estimated from the recording (the spectral line of |x|^2); one sample per
     symbol when no line is found."""
     from .lock_detector_cc import MAX_SAMPLES_PER_SYMBOL
+
+    def whole(exact):          # the detector works at a whole number of samples per symbol
+        return int(min(MAX_SAMPLES_PER_SYMBOL, max(1, round(exact))))
+
     fs = rec.sample_rate
     if settings.symbol_rate_hz is not None:
         exact = fs / settings.symbol_rate_hz
-        return SymbolTiming("given", float(settings.symbol_rate_hz),
-                            int(min(MAX_SAMPLES_PER_SYMBOL, max(1, round(exact)))), exact)
+        return SymbolTiming("given", float(settings.symbol_rate_hz), whole(exact), exact)
     from .recording import read_samples
     from .symbolrate import estimate_symbol_rate
     n = min(rec.num_samples, SYMBOL_RATE_SAMPLES)
@@ -97,8 +100,7 @@ def symbol_timing(rec, settings):
         return SymbolTiming("none", None, 1, line_to_floor_db=float(est.line_to_floor_db),
                             note=est.reason)
     exact = float(est.samples_per_symbol)
-    return SymbolTiming("estimated", float(est.rate_hz),
-                        int(min(MAX_SAMPLES_PER_SYMBOL, max(1, round(exact)))), exact,
+    return SymbolTiming("estimated", float(est.rate_hz), whole(exact), exact,
                         float(est.line_to_floor_db))
 
 

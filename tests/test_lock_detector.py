@@ -475,7 +475,7 @@ def test_after_mth_power_loop(tb):
     tags every 4096 samples): the lock that holds is declared within 0.3 s and is never lost
     afterwards; freq_hz in the status dicts is the loop's estimate. The bound: pull-in ~ 1.3/B_L
     = 13 ms (REFERENCES 2.2) and settling over a few loop time constants leave up to about ten
-    10-ms windows whose quadrature means are large; the noise reference's median needs as many
+    10-ms windows whose null contrasts are large; the noise reference's median needs as many
     settled windows again before it falls to the jitter level (common practice for a median:
     outvote the outliers), and a few more while the factor for k windows comes down; a window
     that the loop sweeps through alignment during pull-in may flicker once."""

@@ -148,7 +148,9 @@ def test_m2m4_edges():
 
 def _reference_windows(x, power, point_angle, window, sps=1):
     """Obvious numpy implementation of the per-window, per-phase sums (complete windows only):
-    arrays (windows, sps) of in-phase and quadrature projection, |y|^2, |y|^4, valid count."""
+    arrays (windows, sps) of in-phase and quadrature projection, |y|^2, |y|^4, valid count,
+    and the in-phase sums of the four quarters (position i of a window is in quarter
+    floor(4 i / window))."""
     k = len(x) // window
     z = x[:k * window].astype(np.complex128).reshape(k, window // sps, sps)
     p = np.abs(z) ** 2
@@ -157,8 +159,10 @@ def _reference_windows(x, power, point_angle, window, sps=1):
         ang = power * (np.angle(z) - point_angle)
         proj = np.where(ok, np.cos(ang), 0.0)
         quad = np.where(ok, np.sin(ang), 0.0)
+    position = np.arange(window).reshape(window // sps, sps)
+    quarters = [np.where((4 * position // window == j)[None], proj, 0.0).sum(1) for j in range(4)]
     return (proj.sum(1), quad.sum(1), np.where(ok, p, 0).sum(1), np.where(ok, p * p, 0).sum(1),
-            ok.sum(1))
+            ok.sum(1), *quarters)
 
 
 def _kernel_windows(x, power, point_angle, window, splits=(), sps=1):
@@ -217,7 +221,7 @@ def test_noise_only_statistic_variance(power):
     rng = np.random.default_rng(100 + power)
     window, k = 64, 20000
     x = rng.standard_normal(2 * window * k, dtype=np.float32).view(np.complex64)
-    proj, quad, _, _, _ = _kernel_windows(x, power, 0.0, window)
+    proj, quad, *_ = _kernel_windows(x, power, 0.0, window)
     for s in (proj[:, 0] / window, quad[:, 0] / window):
         assert len(s) == k
         assert abs(s.mean()) < 4 * np.sqrt(1 / (2 * window) / k)
@@ -256,11 +260,11 @@ def test_threshold_table():
     # ratio of two standard normals, Cauchy distributed (a textbook result, from memory);
     # other entries re-derived by integration over the order statistic (see above).
     t = L.threshold_table(256, 1e-6)
-    assert len(t) == L.REFERENCE_WINDOWS + 1
+    assert len(t) == L.REFERENCE_VALUES + 1
     assert t[0] == pytest.approx(stats.norm.isf(1e-6) / np.sqrt(512), rel=1e-12)
     for p in L.NOISE_REFERENCED_P_FA:
         assert L.threshold_table(256, p)[1] == pytest.approx(np.tan(np.pi * (0.5 - p)), rel=1e-8)
-    for p, k in ((1e-6, 9), (1e-2, 40), (1e-1, L.REFERENCE_WINDOWS)):
+    for p, k in ((1e-6, 9), (1e-2, 40), (1e-1, L.REFERENCE_VALUES)):
         c = L.threshold_table(256, p)[k]
         assert _median_rule_exceedance(c, k) == pytest.approx(p, rel=1e-4)
     fixed = L.threshold_table(256, 1e-6, 0.3)
@@ -280,14 +284,12 @@ def test_median_rule_false_alarm_monte_carlo():
     assert rate == pytest.approx(1e-2, abs=4 * np.sqrt(1e-2 * 0.99 / n))
 
 
-def _reference_rule(metrics, quads, lock_table, unlock_table, state):
+def _reference_rule(metrics, contrasts, lock_table, unlock_table, state):
     """Plain-Python form of the documented rule: threshold max(t[0], t[k] sqrt(lower median of
-    the last k <= K squared quadrature means of the EARLIER windows, each taken relative to
-    the direction of the mean phasor of the windows before it, an average with weight
-    DIRECTION_AVERAGING; the constellation axis while that is zero)); no lock from a
-    noise-referenced table before one window has been seen."""
-    out, history, direction = [], [], 0j
-    for m, q in zip(metrics, quads):
+    the last k <= K squared null contrasts of the EARLIER windows, non-finite ones skipped));
+    no lock from a noise-referenced table before one contrast has been seen."""
+    out, history = [], []
+    for m, ds in zip(metrics, contrasts):
         k = len(history)
         scale = np.sqrt(sorted(history)[(k + 1) // 2 - 1]) if k else 0.0
         if state:
@@ -296,32 +298,74 @@ def _reference_rule(metrics, quads, lock_table, unlock_table, state):
             state = m >= max(lock_table[0], lock_table[k] * scale)
         else:
             state = lock_table[1] == 0 and m >= lock_table[0]
-        w = complex(m, q)
-        rel = (w * np.conj(direction) / abs(direction)).imag if direction != 0 else q
-        history = (history + [rel * rel])[-L.REFERENCE_WINDOWS:]
-        direction += L.DIRECTION_AVERAGING * (w - direction)
+        history = (history + [d * d for d in ds if np.isfinite(d)])[-L.REFERENCE_VALUES:]
         out.append(bool(state))
     return out
 
 
+_contrast = st.one_of(st.floats(-0.3, 0.3), st.just(float("nan")))
+
+
 @settings(max_examples=60, deadline=None)
-@given(st.lists(st.tuples(st.floats(-0.2, 1.0), st.floats(-0.3, 0.3)), max_size=120),
+@given(st.lists(st.tuples(st.floats(-0.2, 1.0), st.tuples(_contrast, _contrast, _contrast)),
+                max_size=120),
        st.booleans(), st.booleans())
 def test_update_lock_matches_reference(windows, start, fixed):
     lock = L.threshold_table(64, 1e-2, 0.4 if fixed else None)
     unlock = L.threshold_table(64, 1e-1, 0.2 if fixed else None)
     ref = L.new_noise_reference()
     state, got = start, []
-    for m, q in windows:
-        state = L.update_lock(state, m, m, q, ref, lock, unlock)
+    for m, ds in windows:
+        state = L.update_lock(state, m, *ds, ref, lock, unlock)
         got.append(bool(state))
-    assert got == _reference_rule([m for m, _ in windows], [q for _, q in windows], lock, unlock, start)
+    assert got == _reference_rule([m for m, _ in windows], [ds for _, ds in windows], lock, unlock,
+                                  start)
+
+
+def _numpy_contrasts(quarter_sums, counts):
+    """The three null contrasts from quarter sums and the number of positions in each quarter,
+    written out plainly: differences of means scaled by 1/sqrt(N (1/n_a + 1/n_b))."""
+    s, n = np.asarray(quarter_sums, float), np.asarray(counts, float)
+    total = n.sum()
+    def diff(sa, na, sb, nb):
+        return (sa / na - sb / nb) / np.sqrt(total * (1 / na + 1 / nb))
+    return (diff(s[0], n[0], s[1], n[1]), diff(s[2], n[2], s[3], n[3]),
+            diff(s[0] + s[1], n[0] + n[1], s[2] + s[3], n[2] + n[3]))
+
+
+@pytest.mark.parametrize("window, sps, phase", [(64, 1, 0), (100, 1, 0), (96, 4, 3), (90, 3, 1),
+                                                 (1022, 2, 0)])
+def test_null_contrasts_match_reference(window, sps, phase):
+    rng = np.random.default_rng(window + phase)
+    sums = rng.standard_normal(4)
+    position = np.arange(window)
+    counts = [np.sum((4 * position // window == j) & (position % sps == phase)) for j in range(4)]
+    got = L.null_contrasts(*sums, window, phase, sps)
+    np.testing.assert_allclose(got, _numpy_contrasts(sums, counts), rtol=1e-12)
+    # a window that stands still (equal quarter means) has no contrast
+    still = L.null_contrasts(*(0.7 * np.array(counts)), window, phase, sps)
+    np.testing.assert_allclose(still, 0.0, atol=1e-15)
+
+
+@pytest.mark.parametrize("power", [1, 2, 8])
+def test_null_contrasts_have_the_metric_variance_on_white_noise(power):
+    # REFERENCES 7.2: on white noise P has variance 1/(2N); each contrast is a difference of
+    # independent quarter means scaled to the same variance (exact for white noise).
+    # 20000 windows, 60000 contrasts: relative s.e. of the variance sqrt(2/60000) = 0.6 %, 4 s.e.
+    rng = np.random.default_rng(500 + power)
+    window, k = 64, 20000
+    x = rng.standard_normal(2 * window * k, dtype=np.float32).view(np.complex64)
+    fields = _kernel_windows(x, power, 0.0, window)
+    d = np.array([L.null_contrasts(*(f[i, 0] for f in fields[L.SUM_I0:]), window, 0, 1)
+                  for i in range(k)])
+    assert d.var() * 2 * window == pytest.approx(1.0, abs=4 * np.sqrt(2 / d.size))
+    assert abs(np.corrcoef(d[:, 0], d[:, 2])[0, 1]) < 4 / np.sqrt(k)    # orthogonal contrasts
 
 
 def test_update_lock_nan_unlocks():
     t_on, t_off = L.threshold_table(64, 1e-3, 0.5), L.threshold_table(64, 1e-3, 0.2)
     ref = L.new_noise_reference()
-    states = [L.update_lock(s, m, m, 0.0, ref, t_on, t_off) for s, m in ((False, 0.9), (True, np.nan))]
+    states = [L.update_lock(s, m, 0.0, 0.0, 0.0, ref, t_on, t_off) for s, m in ((False, 0.9), (True, np.nan))]
     assert states == [True, False]
 
 
@@ -333,15 +377,21 @@ def _band_limited_noise(rng, n, taps):
 @pytest.mark.parametrize("power", [2, 4])
 def test_noise_reference_scales_with_the_noise_spectrum(power):
     # REFERENCES 11.3-11.4: on band-limited noise the window mean of cos(M arg y) has a
-    # variance (1/(2N)) sum_tau rho_M(tau) > 1/(2N) [derived], and the quadrature mean has the
-    # same distribution. Low-pass noise (scipy.signal.firwin, cut-off 1/16 of the rate):
-    # var(P) is well above 1/(2N), and var(Q) matches var(P) within sampling error
-    # (4000 windows: relative s.e. of a variance sqrt(2/K) = 2.2 %; two of them: 3.2 %; 4 s.e.).
+    # variance (1/(2N)) sum_tau rho_M(tau) > 1/(2N) [derived]; the null contrasts of the
+    # quarter sums have the same variance up to the documented bias of order L / (N/4) for a
+    # correlation length L. Low-pass noise (scipy.signal.firwin, cut-off 1/16 of the rate, so
+    # L of about 16 samples) in windows of 1024: var(P) is well above 1/(2N), and the contrasts'
+    # variance matches it within sampling error (3000 windows: relative s.e. of var(P)
+    # sqrt(2/3000) = 2.6 %, of the contrasts' 1.5 %; together 3 %; 4 s.e.) plus a 16/256 bias
+    # allowance on the low side.
     from scipy import signal
     rng = np.random.default_rng(300 + power)
-    window, k = 256, 4000
+    window, k = 1024, 3000
     x = _band_limited_noise(rng, window * k, signal.firwin(129, 1 / 16))
-    proj, quad, _, _, _ = _kernel_windows(x, power, 0.0, window)
-    vp, vq = np.var(proj[:, 0] / window), np.var(quad[:, 0] / window)
+    fields = _kernel_windows(x, power, 0.0, window)
+    vp = np.var(fields[L.SUM_I][:, 0] / window)
+    d = np.array([L.null_contrasts(*(f[i, 0] for f in fields[L.SUM_I0:]), window, 0, 1)
+                  for i in range(k)])
     assert vp * 2 * window > 3.0                    # the white-noise variance would be badly wrong
-    assert vq / vp == pytest.approx(1.0, abs=4 * np.sqrt(2 * 2 / k))
+    sigma = 4 * np.sqrt(2 / k + 2 / d.size)
+    assert 1.0 - sigma - 16 / 256 < d.var() / vp < 1.0 + sigma

@@ -3,14 +3,14 @@
 
 ``FACTORS[p][k - 1]`` is the c with ``P(I >= c sqrt(m)) = p`` when I ~ N(0, 1) and m is
 the ((k + 1) // 2)-th smallest of k independent squared N(0, 1) values (the lower median
-of the squared quadrature means of k windows): by numerical integration over the order
+of the squared null contrasts of the earlier windows): by numerical integration over the order
 statistic, ``P = int_0^1 Q(c sqrt(F^-1(u))) Beta(u; j, k - j + 1) du`` with F the chi-square
 (1 degree of freedom) distribution, solved for c (scipy quad and brentq, relative
 tolerance 1e-10). ``tests/test_lockstat.py`` re-derives entries independently.
 """
 
-#: Windows whose quadrature means form the noise reference.
-REFERENCE_WINDOWS = 96
+#: Null contrasts that form the noise reference.
+REFERENCE_VALUES = 96
 
 FACTORS = {
     1e-06: (

@@ -49,7 +49,7 @@ Lock indicator (internal, drives acquisition): the phase-only statistic
 ``mean cos(M arg y - M point_angle)`` over windows of ``lock_window`` samples
 counted from the start of the stream, decided by the same rule as the lock
 detector (``coherer.lockstat.update_lock``: a threshold referenced to the
-measured quadrature projection, so the false-lock probability holds on
+null contrasts of the windows (in-phase quarter differences), so the false-lock probability holds on
 band-limited noise too). A loop partly follows band-limited noise (it tracks
 the slow part of the noise's M-th power phase), which biases the projection of
 its own output toward lock even on noise alone, mostly through the
@@ -107,7 +107,7 @@ import numpy as np
 from numba import njit
 
 from ._numeric import half_power, pair_power
-from .lockstat import update_lock
+from .lockstat import null_contrasts, quarter_start, update_lock
 
 # state[] layout -------------------------------------------------------------------
 S_PHASE = 0      # theta^, rad, wrapped to [-pi, pi)
@@ -126,7 +126,7 @@ S_REF_R = 12     # slip tracker residual: unwrapped NCO phase minus reference, r
 S_REF_F = 13     # reference frequency, rad/sample
 S_REF_A = 14     # reference frequency rate, rad/sample^2
 S_SLIPS = 15     # signed slips declared so far
-S_FAST_M2 = 17   # fast exponential average of |x|^2 (level-step detector)
+S_FAST_M2 = 16   # fast exponential average of |x|^2 (level-step detector)
 S_WIN_STEPS = 17 # sum of NCO steps in this lock window, rad
 S_PREV_STEP = 18 # mean NCO step of the previous window, rad/sample
 S_REF_AGE = 19   # lock windows since the slip reference started
@@ -154,11 +154,16 @@ S_LINE_P = 40    # exponential average of |d|^2 (the line estimate's noise scale
 S_LINE_ON = 41   # 1.0 while the detector is normalised by the line estimate
 S_FREE_RE = 42   # reference e^{j M theta~} of the lock statistic: the NCO's M-th power phasor at
 S_FREE_IM = 43   # the start of the lock window, advanced at the NCO's rate over earlier windows
-S_FREE_I = 44    # window sums of (y/|y|)^M against the free-running reference
-S_FREE_Q = 45
+S_FREE_I = 44    # sums of the in-phase and quadrature projection of (y/|y|)^M on the
+S_FREE_Q = 45    # free-running reference over this quarter of the lock window so far
 S_FREE_F = 46    # its step, rad/sample: the NCO's mean step over the last window, extrapolated
 S_FREE_A = 47    # its change per sample (the change of that mean between windows)
-STATE_SIZE = 48
+S_QUARTERS = 48  # the window's quarter sums: in-phase 48..51, quadrature 52..55
+S_FREE_LEVEL = 56  # smoothed mean NCO step per window (rad/sample) and its trend per
+S_FREE_TREND = 57  # window: the free-running reference's rate (Holt's linear method)
+S_NCO_REL_RE = 58  # sum over this lock window of the NCO's M-th power phasor against the
+S_NCO_REL_IM = 59  # reference: where the NCO sat on average, relative to the reference
+STATE_SIZE = 60
 
 # params[] layout ------------------------------------------------------------------
 P_K1 = 0
@@ -199,6 +204,11 @@ REF_STAGE_END = (2.0, 6.0, 14.0)
 STRONG_LOOP_SNR = 10.0            # loop SNR 1/(B_L T V_M) above which the detector angle decides
 ANGLE_DEPARTURE = 1.5 * np.pi      # detector-angle departure (M domain) that is a slip
 LP_NOISE_FLOOR = 4.0               # |low-passed phasor|^2 must exceed this * beta: 4 noise std
+#: weights of Holt's linear method for the rate of the lock statistic's reference: level
+#: and trend of the NCO's mean step per window (less noise than one window's
+#: step, and no lag on a frequency ramp)
+FREE_LEVEL_WEIGHT = 0.25
+FREE_TREND_WEIGHT = 0.125
 LINE_SIGNIFICANCE = 64.0           # the line estimate is used once it stands 8 standard errors out
 
 
@@ -275,6 +285,10 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     alpha = params[P_ALPHA]
     step_in_freq = params[P_STEP_IN_FREQ]
     lock_window = params[P_LOCK_WINDOW]
+    window_int = int(lock_window)
+    quarter_1 = float(quarter_start(1, window_int))     # window positions where quarters end
+    quarter_2 = float(quarter_start(2, window_int))
+    quarter_3 = float(quarter_start(3, window_int))
     line_alpha = params[P_LINE_ALPHA]
     line_var_k = line_alpha / (2.0 - line_alpha)   # variance of an average / per-sample variance
     slow_g1 = params[P_REF_G1]
@@ -305,6 +319,11 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     free_f = state[S_FREE_F]
     free_a = state[S_FREE_A]
     free_q = state[S_FREE_Q]
+    free_level = state[S_FREE_LEVEL]
+    nco_rel_re = state[S_NCO_REL_RE]
+    nco_rel_im = state[S_NCO_REL_IM]
+    free_trend = state[S_FREE_TREND]
+    quarters = state[S_QUARTERS:S_QUARTERS + 8]     # a view: written in place
     line_re = state[S_LINE_RE]
     line_im = state[S_LINE_IM]
     line_w = state[S_LINE_W]
@@ -372,12 +391,14 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             nco_left = NCO_RESYNC
         nco_left -= 1.0
         norm_left -= 1.0
-        if lock_pos == 0.0:
-            # a lock window starts: the noise reference of the lock rule is measured against
-            # a reference that does not follow the noise during the window (the loop's own
-            # output does, which would shrink its quadrature part on noise)
+        if free_re == 0.0 and free_im == 0.0:
+            # the lock statistic's reference starts on the NCO; it does not follow the noise
+            # within a window (the loop's own output does, which biases the statistic toward
+            # lock on band-limited noise)
             free_re = pm_re
             free_im = pm_im
+        nco_rel_re += pm_re * free_re + pm_im * free_im
+        nco_rel_im += pm_im * free_re - pm_re * free_im
         c = ph_re
         s = ph_im
         # the next phasors up to this sample's correction (known before the detector)
@@ -559,18 +580,51 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
 
         # lock indicator: decide at the end of each window
         lock_pos += 1.0
+        if lock_pos == quarter_1 or lock_pos == quarter_2 or lock_pos == quarter_3 or \
+                lock_pos >= lock_window:
+            j = (4 * (int(lock_pos) - 1)) // window_int          # the quarter just finished
+            quarters[j] = free_i
+            quarters[4 + j] = free_q
+            free_i = 0.0
+            free_q = 0.0
         if lock_pos >= lock_window:
             was_locked = locked
             ref_age += 1.0
             mean_step = win_steps / lock_window
             slope = (mean_step - prev_step) / lock_window
             prev_step = mean_step
-            free_f = mean_step + slope * (0.5 * lock_window + 0.5)
-            free_a = slope
+            # the reference's rate: a smoothed level and trend of the NCO's mean step (Holt's
+            # linear method); while locked, the step's disagreement with the prediction is
+            # taken modulo a whole M-domain turn per window, so that a cycle slip (which adds
+            # 2 pi / M to the NCO phase) does not turn the reference
+            last_level = free_level
+            predicted = free_level + free_trend
+            seen = mean_step
+            if locked > 0.0:
+                turns = power * lock_window * (mean_step - predicted) / TWO_PI
+                seen -= np.floor(turns + 0.5) * TWO_PI / (power * lock_window)
+            free_level = predicted + FREE_LEVEL_WEIGHT * (seen - predicted)
+            free_trend += FREE_TREND_WEIGHT * (free_level - last_level - free_trend)
+            free_a = free_trend / lock_window
+            free_f = free_level + free_trend - free_a * 0.5 * (lock_window - 1.0)
+            # and its phase: turned onto the NCO's mean M-th power phasor over the window (an
+            # average, so the NCO's jitter at one instant does not move it)
+            rel = np.sqrt(nco_rel_re * nco_rel_re + nco_rel_im * nco_rel_im)
+            if rel > 0.0:
+                rr = nco_rel_re / rel
+                ri = nco_rel_im / rel
+                free_re, free_im = free_re * rr - free_im * ri, free_re * ri + free_im * rr
+            mag = np.sqrt(free_re * free_re + free_im * free_im)
+            if mag > 0.0:
+                free_re /= mag
+                free_im /= mag
+            nco_rel_re = 0.0
+            nco_rel_im = 0.0
             win_steps = 0.0
             if lock_n >= 0.5 * lock_window:
-                metric = free_i / lock_window
-                now = update_lock(locked > 0.0, metric, metric, free_q / lock_window,
+                metric = (quarters[0] + quarters[1] + quarters[2] + quarters[3]) / lock_window
+                d1, d2, d3 = null_contrasts(quarters[:4], quarters[4:], window_int, 0, 1)
+                now = update_lock(locked > 0.0, metric, d1, d2, d3,
                                   lock_ref, on_table, off_table)
                 if locked > 0.0:
                     locked = 1.0 if now else 0.0
@@ -592,8 +646,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                 lock_to[n_locks] = 1 if locked > 0.0 else 0
                 lock_freq[n_locks] = acc1 + step_in_freq * last_step
                 n_locks += 1
-            free_i = 0.0
-            free_q = 0.0
+            quarters[:] = 0.0
             lock_n = 0.0
             lock_pos = 0.0
             if mw >= MW_SETTLED:      # keep the last verdict while the moments restart
@@ -621,6 +674,10 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_FREE_F] = free_f
     state[S_FREE_A] = free_a
     state[S_FREE_Q] = free_q
+    state[S_FREE_LEVEL] = free_level
+    state[S_NCO_REL_RE] = nco_rel_re
+    state[S_NCO_REL_IM] = nco_rel_im
+    state[S_FREE_TREND] = free_trend
     state[S_LINE_RE] = line_re
     state[S_LINE_IM] = line_im
     state[S_LINE_W] = line_w

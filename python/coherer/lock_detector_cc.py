@@ -74,11 +74,12 @@ class lock_detector_cc(gr.sync_block):
     high SNR), 0 on noise alone or on a signal rotating against the reference.
     Default thresholds (see ``coherer.lockstat``): the larger of the white-noise
     value ``Qinv(P_FA)/sqrt(2N)`` and a factor times the null scale measured by the
-    quadrature projection (lower median of its square over the last 96 windows).
-    The quadrature projection has on noise the same distribution as P whatever the
-    noise spectrum, so the threshold follows the noise actually present (band-limited
-    by a matched or channel filter, or oversampled), where a fixed ``1/(2N)``
-    variance would be wrong (constant-false-alarm practice). At the start of a
+    windows' null contrasts (differences of quarter means, which carry nothing of a
+    carrier standing still; lower median of their squares over the last 96 of them).
+    On noise they have the spread of P whatever the noise spectrum, so the threshold
+    follows the noise actually present (band-limited by a matched or channel filter,
+    or oversampled), where a fixed ``1/(2N)`` variance would be wrong
+    (constant-false-alarm practice). At the start of a
     stream the first lock can take a few windows while the reference fills.
     Es/N0 is the M2M4 estimate (Pauluzzi & Beaulieu 2000) over the same samples,
     in dB, clamped to [-60, 100] dB. NaN, Inf and zero samples are gaps: passed

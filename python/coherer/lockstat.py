@@ -25,34 +25,35 @@ when successive samples are independent. A real receiver's noise is band-limited
 correlated and the window mean of N samples has a larger variance,
 ``(1/(2N)) sum_tau rho_M(tau)``: a threshold set for white noise then declares
 false locks far more often than stated (1e-3 to 1e-2 per window instead of 1e-6
-at 4-8 samples per symbol). On noise alone the window mean W = P + jQ of
-``(y/|y|)^M e^{-j M point_angle}`` is circularly symmetric whatever the noise
-spectrum (arg y is uniform and the noise circular), so its component Q' in any
-direction chosen independently of the window has the same distribution as P:
-the spread of Q' over the earlier windows measures the null scale of P on the
-noise actually present. The direction is that of the mean phasor of the earlier
-windows (an average with weight DIRECTION_AVERAGING per window; the
-constellation axis until one exists): on noise it is random and independent of
-the window judged, and locked it is the loop's steady phase error, so a static
-error (a frequency ramp followed by a second-order loop) does not count as
-noise. The scale is the lower median of the squared Q' of the last K windows
-rather than their mean, so that the windows of a strong signal still rotating
-against the reference (a loop pulling in), whose Q' is large, cannot hold the
-threshold up for K windows after lock: they are outvoted as soon as they are a
-minority. With the Gaussian approximation of the window means, the factor c_k
-with ``P(P >= c_k scale) = P_FA`` for a scale from k windows follows from the
-distribution of that order statistic by numerical integration
-(``coherer._lock_factors``). The lock threshold is
+at 4-8 samples per symbol). The null scale of P is therefore measured on the
+noise actually present, from the windows' own samples: with s_0..s_3 the means of
+the phasor (y/|y|)^M rot over the four quarters of the window, the three contrasts
+``s_0 - s_1``, ``s_2 - s_3`` and ``(s_0 + s_1)/2 - (s_2 + s_3)/2``, each scaled so
+that on white noise its variance is that of P (:func:`null_contrasts`), are
+orthogonal to the window mean: a signal that stands still against the reference
+(a locked carrier, including its static phase error and the loop's phase offset
+at the window start) adds nothing to them, and one that turns slowly within the
+window adds nothing to first order once they are projected on the direction of
+the window's mean phasor (:func:`null_contrasts`), while noise gives them the variance of
+P whatever its spectrum, as long as it is correlated over much fewer samples than
+a quarter window (for a correlation length L the scale comes out low by about
+L / (window / 4) in variance; at 16 samples per symbol through a 1024-sample loop
+window, a few per cent). The scale is the lower median of the squared contrasts of the
+earlier windows, the last K = REFERENCE_VALUES = 96 of them (32 windows), rather
+than their mean, so that the windows of a strong signal still rotating against
+the reference (a loop pulling in), whose contrasts are large, cannot hold the
+threshold up once they are a minority. With the Gaussian approximation of the
+window means, the factor c_k with ``P(P >= c_k scale) = P_FA`` for a scale from k
+contrasts follows from the distribution of that order statistic by numerical
+integration (``coherer._lock_factors``). The lock threshold is
 ``max(Qinv(P_FA)/sqrt(2N), c_k scale)`` (:func:`update_lock`): the white-noise
 value is a floor, the second term takes over on coloured noise. Referencing a
 detection threshold to the measured noise is constant-false-alarm practice
-(radar and satellite-navigation lock detectors; common practice). Locked, Q'
-carries only the phase jitter and is small, which only lowers the threshold
-toward the white-noise floor. K = REFERENCE_WINDOWS = 96 windows (c_96 at 1e-6
+(radar and satellite-navigation lock detectors; common practice). c_96 at 1e-6
 puts the threshold at 5.65 noise standard deviations, 19 % above the Gaussian
-4.75 for white noise); with fewer windows the factor for their number is used,
-and the first window of a stream never declares lock, so a noise-only start
-cannot declare lock early.
+4.75 for white noise; with fewer contrasts the factor for their number is used,
+and the first window of a stream never declares lock (three contrasts say
+little), so at a strong signal the first lock comes after two to four windows.
 
 Default thresholds (:func:`default_thresholds`, the white-noise floors): lock at
 ``P_FA = 1e-6`` per window, release at ``P_FA = 1e-2`` per window (a noise-only
@@ -88,7 +89,8 @@ numba kernels ``unit_projection`` (one sample, for use inside other kernels),
 ``window_sums`` (sums of whole windows per timing phase, SIMD at one sample per
 symbol), ``update_lock`` (the one lock rule, also called by the loop kernel),
 ``decide_windows`` (metric, Es/N0 and decisions of completed windows);
-``threshold_table``, ``new_noise_reference`` build their inputs.
+``null_contrasts`` (the noise measure); ``threshold_table``, ``new_noise_reference`` build
+their inputs.
 """
 
 from math import sqrt
@@ -104,12 +106,12 @@ from ._numeric import unit_pair_power
 DEFAULT_LOCK_P_FA = 1e-6
 #: Per-window probability that noise alone holds a declared lock (default unlock threshold).
 DEFAULT_UNLOCK_P_FA = 1e-2
-#: Windows of quadrature projections that measure the null scale of the lock statistic.
-REFERENCE_WINDOWS = _lock_factors.REFERENCE_WINDOWS
+#: Null contrasts (three per window) that measure the null scale of the lock statistic.
+REFERENCE_VALUES = _lock_factors.REFERENCE_VALUES
 #: Per-window probabilities for which noise-referenced thresholds are tabulated.
 NOISE_REFERENCED_P_FA = tuple(sorted(_lock_factors.FACTORS))
-#: Weight of a new window in the mean phasor whose direction the quadrature means are taken to.
-DIRECTION_AVERAGING = 0.5
+#: Null contrasts each window adds to the noise reference.
+CONTRASTS_PER_WINDOW = 3
 #: Weight of a new window in the per-phase power average that picks the timing phase.
 PHASE_AVERAGING = 0.125
 #: Reported Es/N0 is clamped to this range, dB (the estimate is +-inf at the extremes).
@@ -137,16 +139,16 @@ def false_lock_probability(window, threshold):
 
 
 def threshold_table(window, p_fa, threshold=None):
-    """Threshold table for :func:`update_lock` (float64 array of REFERENCE_WINDOWS + 1).
+    """Threshold table for :func:`update_lock` (float64 array of REFERENCE_VALUES + 1).
 
     ``t[0]`` is the white-noise threshold ``Qinv(p_fa)/sqrt(2N)`` (or the fixed
-    ``threshold`` when given), ``t[k]`` (k = 1..REFERENCE_WINDOWS) the factor on the
-    measured null scale (the lower median of k squared quadrature means) exceeded by
+    ``threshold`` when given), ``t[k]`` (k = 1..REFERENCE_VALUES) the factor on the
+    measured null scale (the lower median of k squared null contrasts) exceeded by
     noise alone with probability ``p_fa`` (``coherer._lock_factors``; 0 when a fixed
     threshold is given, which then rules alone). ``p_fa`` is one of
     ``NOISE_REFERENCED_P_FA`` unless a fixed threshold is given.
     """
-    t = np.zeros(REFERENCE_WINDOWS + 1)
+    t = np.zeros(REFERENCE_VALUES + 1)
     if threshold is None:
         if p_fa not in _lock_factors.FACTORS:
             raise ValueError(f"p_fa must be one of {NOISE_REFERENCED_P_FA} for a noise-referenced "
@@ -159,9 +161,9 @@ def threshold_table(window, p_fa, threshold=None):
 
 
 def new_noise_reference():
-    """An empty noise reference for :func:`update_lock`: [count, position, direction
-    (2), ring of REFERENCE_WINDOWS squared quadrature means]."""
-    return np.zeros(REFERENCE_WINDOWS + 4)
+    """An empty noise reference for :func:`update_lock`: [count, position, ring of
+    REFERENCE_VALUES squared null contrasts]."""
+    return np.zeros(REFERENCE_VALUES + 2)
 
 
 def default_thresholds(window):
@@ -273,14 +275,19 @@ def unit_projection(z, power, rot):
 #: compiled with their caller's flags, so ``window_sums`` carries them too.
 _SIMD_MATH = {"reassoc", "contract", "nsz", "arcp"}
 
-#: Fields of the per-window, per-phase sums written by :func:`window_sums`.
+#: Fields of the per-window, per-phase sums written by :func:`window_sums`: in-phase and
+#: quadrature projection, |y|^2, |y|^4, valid count, then the in-phase (SUM_I0 + j) and
+#: quadrature (SUM_Q0 + j) projection of each quarter j of the window (positions i with
+#: ``(4 i) // window == j``).
 SUM_I, SUM_Q, SUM_M2, SUM_M4, SUM_VALID = range(5)
-SUM_FIELDS = 5
+SUM_I0 = 5
+SUM_Q0 = 9
+SUM_FIELDS = 13
 
 
 @njit(cache=True, inline="always", fastmath=_SIMD_MATH, error_model="numpy")
 def _one_window(xs, power, rot_re, rot_im):
-    """Sums (in-phase and quadrature projection, |y|^2, |y|^4, valid count) of one window
+    """Sums (in-phase and quadrature projection, |y|^2, |y|^4, valid count) of one stretch
     given as interleaved float32 I/Q ``xs``. Branch-free (gaps are masked, not skipped)
     so that it vectorises."""
     s_i = 0.0
@@ -305,22 +312,53 @@ def _one_window(xs, power, rot_re, rot_im):
     return s_i, s_q, s_m2, s_m4, s_valid
 
 
+@njit(cache=True, inline="always")
+def quarter_start(j, window):
+    """First position of quarter ``j`` (0..4) of a window: ``ceil(j window / 4)``."""
+    return -((-j * window) // 4)
+
+
+@njit(cache=True, inline="always", fastmath=_SIMD_MATH, error_model="numpy")
+def _quartered_window(xs, power, rot_re, rot_im, window, out):
+    """Sums of one window (interleaved float32 ``xs``) into ``out[:]`` (fields SUM_*),
+    quarter by quarter."""
+    for f in range(SUM_FIELDS):
+        out[f] = 0.0
+    for j in range(4):
+        lo = quarter_start(j, window)
+        hi = quarter_start(j + 1, window)
+        r = _one_window(xs[2 * lo:2 * hi], power, rot_re, rot_im)
+        out[SUM_I0 + j] = r[0]
+        out[SUM_Q0 + j] = r[1]
+        out[SUM_I] += r[0]
+        out[SUM_Q] += r[1]
+        out[SUM_M2] += r[2]
+        out[SUM_M4] += r[3]
+        out[SUM_VALID] += r[4]
+
+
 @njit(cache=True, inline="always", error_model="numpy")
 def _phased_window(x, power, rot_re, rot_im, sps, out):
     """Sums of one window (complex ``x``, first sample at timing phase 0) per timing phase
     ``k = position mod sps`` into ``out[k, :]`` (fields SUM_*)."""
+    window = x.shape[0]
     for k in range(sps):
         for f in range(SUM_FIELDS):
             out[k, f] = 0.0
-    for i in range(x.shape[0]):
+    for i in range(window):
         k = i % sps
         zr = np.float64(x[i].real)
         zi = np.float64(x[i].imag)
         p = zr * zr + zi * zi
         if p > 0.0 and p < np.inf:
             ur, ui = unit_pair_power(zr, zi, p, power)
-            out[k, SUM_I] += ur * rot_re - ui * rot_im
-            out[k, SUM_Q] += ur * rot_im + ui * rot_re
+            proj = ur * rot_re - ui * rot_im
+            quad = ur * rot_im + ui * rot_re
+            j = (4 * i) // window
+            out[k, SUM_I] += proj
+            out[k, SUM_Q] += quad
+            out[k, SUM_I0 + j] += proj
+            out[k, SUM_Q0 + j] += quad
             out[k, SUM_M2] += p
             out[k, SUM_M4] += p * p
             out[k, SUM_VALID] += 1.0
@@ -335,11 +373,12 @@ def window_sums(x, power, rot_re, rot_im, window, sps, sums):
     used. ``sums[k, ph, f]`` receives, for timing phase ``ph`` (sample position in
     the window modulo ``sps``; ``window`` is a multiple of ``sps``) the sums (not
     means) of the in-phase projection ``Re((y/|y|)^M rot)``, the quadrature one
-    ``Im(...)``, |y|^2, |y|^4 and the number of valid samples (fields SUM_*); it
-    needs ``len(x) // window`` rows and ``sps`` phases. Returns the number of windows.
-    A window's sums depend only on its own samples (bit for bit), so any split of a
-    stream at window boundaries gives the same results. Gap samples (NaN, Inf, 0)
-    count toward the window length but add nothing.
+    ``Im(...)``, |y|^2, |y|^4, the number of valid samples and the in-phase sums of
+    the four quarters (fields SUM_*); it needs ``len(x) // window`` rows and ``sps``
+    phases. Returns the number of windows. A window's sums depend only on its own
+    samples (bit for bit), so any split of a stream at window boundaries gives the
+    same results. Gap samples (NaN, Inf, 0) count toward the window length but add
+    nothing.
     """
     count = x.shape[0] // window
     if sps > 1:
@@ -349,35 +388,92 @@ def window_sums(x, power, rot_re, rot_im, window, sps, sums):
     xf = x.view(np.float32)
     for k in range(count):
         xs = xf[2 * k * window:2 * (k + 1) * window]
+        out = sums[k, 0]
         if power == 1:                 # constant M for the common cases: straight-line code
-            r = _one_window(xs, 1, rot_re, rot_im)
+            _quartered_window(xs, 1, rot_re, rot_im, window, out)
         elif power == 2:
-            r = _one_window(xs, 2, rot_re, rot_im)
+            _quartered_window(xs, 2, rot_re, rot_im, window, out)
         elif power == 4:
-            r = _one_window(xs, 4, rot_re, rot_im)
+            _quartered_window(xs, 4, rot_re, rot_im, window, out)
         elif power == 8:
-            r = _one_window(xs, 8, rot_re, rot_im)
+            _quartered_window(xs, 8, rot_re, rot_im, window, out)
         else:
-            r = _one_window(xs, power, rot_re, rot_im)
-        sums[k, 0, SUM_I] = r[0]
-        sums[k, 0, SUM_Q] = r[1]
-        sums[k, 0, SUM_M2] = r[2]
-        sums[k, 0, SUM_M4] = r[3]
-        sums[k, 0, SUM_VALID] = r[4]
+            _quartered_window(xs, power, rot_re, rot_im, window, out)
     return count
 
 
 # --- the lock decision (shared by the lock detector and the loops' indicator) ---------
 
-# layout of the noise reference: [count, position, direction re, direction im, ring...]
-_REF_COUNT, _REF_POS, _REF_DIR_RE, _REF_DIR_IM, _REF_RING = range(5)
+# layout of the noise reference: [count, position, ring of REFERENCE_VALUES squared contrasts]
+_REF_COUNT, _REF_POS, _REF_RING = range(3)
+
+
+@njit(cache=True, inline="always")
+def _phase_positions(lo, hi, phase, sps):
+    """Positions i in [lo, hi) with ``i % sps == phase`` (lo, hi >= 0)."""
+    return (hi - phase + sps - 1) // sps - (lo - phase + sps - 1) // sps
+
+
+@njit(cache=True)
+def null_contrasts(quarter_i, quarter_q, window, phase, sps):
+    """The three null contrasts of a window from its quarter sums ``quarter_i``,
+    ``quarter_q`` (arrays of 4: in-phase and quadrature projection of the timing phase
+    ``phase`` of ``sps``; quarters as in :func:`window_sums`).
+
+    The complex contrasts are first minus second quarter, third minus fourth, first
+    minus second half: differences of means scaled by ``1/sqrt(N (1/n_a + 1/n_b))`` (N
+    positions of the phase in the window, n_a, n_b in the parts) so that on white noise
+    each has the variance of the metric, and orthogonal to the window mean. Each is
+    returned projected on the direction of the window's mean phasor (the constellation
+    axis if that is zero): a slow turn of the signal against the reference within the
+    window moves the quarters across that direction and so drops out to first order,
+    while on noise the direction is independent of the contrasts (orthogonal Gaussian
+    sums), which keeps their null distribution. Returns ``(d1, d2, d3)``; NaN for a
+    contrast with an empty part."""
+    n = np.zeros(4)
+    for j in range(4):
+        n[j] = _phase_positions(quarter_start(j, window), quarter_start(j + 1, window), phase, sps)
+    symbols = n[0] + n[1] + n[2] + n[3]
+    w_re = quarter_i[0] + quarter_i[1] + quarter_i[2] + quarter_i[3]
+    w_im = quarter_q[0] + quarter_q[1] + quarter_q[2] + quarter_q[3]
+    mag = np.sqrt(w_re * w_re + w_im * w_im)
+    if mag > 0.0:
+        w_re /= mag
+        w_im /= mag
+    else:
+        w_re = 1.0
+        w_im = 0.0
+    out = np.full(3, np.nan)
+    parts = ((0, 1, 1, 2), (2, 3, 3, 4), (0, 2, 2, 4))    # [a0, a1) minus [b0, b1)
+    for c in range(3):
+        a0, a1, b0, b1 = parts[c]
+        na = 0.0
+        nb = 0.0
+        sa_re = 0.0
+        sa_im = 0.0
+        sb_re = 0.0
+        sb_im = 0.0
+        for j in range(a0, a1):
+            na += n[j]
+            sa_re += quarter_i[j]
+            sa_im += quarter_q[j]
+        for j in range(b0, b1):
+            nb += n[j]
+            sb_re += quarter_i[j]
+            sb_im += quarter_q[j]
+        if na > 0.0 and nb > 0.0:
+            g = 1.0 / np.sqrt(symbols * (1.0 / na + 1.0 / nb))
+            d_re = (sa_re / na - sb_re / nb) * g
+            d_im = (sa_im / na - sb_im / nb) * g
+            out[c] = d_re * w_re + d_im * w_im
+    return out[0], out[1], out[2]
 
 
 @njit(cache=True)
 def noise_scale(ref):
     """``(scale, count)`` of the noise reference ``ref`` (see :func:`new_noise_reference`):
-    the square root of the lower median of the squared quadrature means it holds, and
-    their number (0: no scale yet, scale 0)."""
+    the square root of the lower median of the squared contrasts it holds, and their
+    number (0: no scale yet, scale 0)."""
     count = int(ref[_REF_COUNT])
     if count == 0:
         return 0.0, 0
@@ -386,47 +482,36 @@ def noise_scale(ref):
 
 
 @njit(cache=True)
-def push_window(ref, i_mean, q_mean):
-    """Add a decided window (in-phase and quadrature means ``i_mean``, ``q_mean``) to the
-    noise reference ``ref``: its quadrature mean relative to the direction of the earlier
-    windows' mean phasor goes into the ring (relative to the constellation axis while
-    that direction is unknown), then the direction moves toward this window."""
+def push_contrast(ref, d):
+    """Add one null contrast ``d`` (skipped unless finite) to the noise reference ``ref``."""
+    if not np.isfinite(d):
+        return
     k = ref.shape[0] - _REF_RING
-    dr = ref[_REF_DIR_RE]
-    di = ref[_REF_DIR_IM]
-    mag = np.sqrt(dr * dr + di * di)
-    q = q_mean
-    if mag > 0.0:
-        q = (q_mean * dr - i_mean * di) / mag     # Im((I + jQ) conj(dir) / |dir|)
     count = int(ref[_REF_COUNT])
     pos = int(ref[_REF_POS])
-    if np.isfinite(q):
-        ref[_REF_RING + pos] = q * q
-        ref[_REF_POS] = (pos + 1) % k
-        if count < k:
-            ref[_REF_COUNT] = count + 1
-    if np.isfinite(i_mean) and np.isfinite(q_mean):
-        ref[_REF_DIR_RE] = dr + DIRECTION_AVERAGING * (i_mean - dr)
-        ref[_REF_DIR_IM] = di + DIRECTION_AVERAGING * (q_mean - di)
+    ref[_REF_RING + pos] = d * d
+    ref[_REF_POS] = (pos + 1) % k
+    if count < k:
+        ref[_REF_COUNT] = count + 1
 
 
 @njit(cache=True)
-def update_lock(locked, metric, ref_i, ref_q, ref, on_table, off_table):
+def update_lock(locked, metric, d1, d2, d3, ref, on_table, off_table):
     """Lock decision after one window: the shared rule of every lock indicator here.
 
-    ``metric`` is the window's in-phase mean of ``(y/|y|)^M rot``; ``ref_i``, ``ref_q``
-    the window's mean phasor against the reference the noise is measured with (the
-    detector: ``metric`` and the quadrature mean; a loop: a reference that does not
-    follow the noise); ``ref`` the noise reference of the earlier windows (this window
-    is added to it afterwards, so the scale never contains the window it judges). A
-    table ``t`` (from :func:`threshold_table`) gives the threshold
-    ``max(t[0], t[k] * scale)`` with k the windows in the reference (no lock while it
-    is empty, unless the table holds a fixed threshold): t[0] for white noise, t[k]
-    the factor for the measured null scale.
+    ``metric`` is the window's in-phase mean of ``(y/|y|)^M rot``; ``d1, d2, d3`` its
+    null contrasts (:func:`null_contrasts`); ``ref`` the noise reference of the
+    earlier windows' contrasts (this window's are added afterwards, so the scale never
+    contains the window it judges). A table ``t`` (from :func:`threshold_table`) gives
+    the threshold ``max(t[0], t[k] * scale)`` with k the contrasts in the reference (no
+    lock while it is empty, unless the table holds a fixed threshold): t[0] for white
+    noise, t[k] the factor for the measured null scale.
     Unlocked -> locked when ``metric >= on``, locked -> unlocked when ``metric < off``
     (NaN unlocks). Returns the new state."""
     scale, count = noise_scale(ref)
-    push_window(ref, ref_i, ref_q)
+    push_contrast(ref, d1)
+    push_contrast(ref, d2)
+    push_contrast(ref, d3)
     if locked:
         if count == 0:
             return metric >= off_table[0]
@@ -475,7 +560,9 @@ def decide_windows(sums, count, symbols, sps, ref, phase_power, on_table, off_ta
                                                              s[SUM_M4] / s[SUM_VALID]))
         else:
             esn0_db_out[k] = np.nan
-        state = update_lock(state, metric[k], metric[k], q_metric[k], ref, on_table, off_table)
+        d1, d2, d3 = null_contrasts(s[SUM_I0:SUM_I0 + 4], s[SUM_Q0:SUM_Q0 + 4], sps * symbols,
+                                    best, sps)
+        state = update_lock(state, metric[k], d1, d2, d3, ref, on_table, off_table)
         decisions[k] = state
         phases[k] = best
     return state
@@ -486,6 +573,7 @@ __all__ = [
     "noise_std", "false_lock_threshold", "false_lock_probability", "default_thresholds",
     "c_m", "projection_variance", "detection_probability",
     "m2m4_esn0_scalar", "esn0_db_scalar", "m2m4_esn0", "esn0_db",
-    "REFERENCE_WINDOWS", "threshold_table", "new_noise_reference",
-    "unit_projection", "window_sums", "noise_scale", "push_window", "update_lock", "decide_windows",
+    "REFERENCE_VALUES", "threshold_table", "new_noise_reference",
+    "unit_projection", "window_sums", "quarter_start", "null_contrasts", "noise_scale", "push_contrast",
+    "update_lock", "decide_windows",
 ]

@@ -148,7 +148,7 @@ class mth_power_loop_cc(gr.sync_block):
         self._params = None
         self._publish(*self._spec)
         self._state = K.new_state()
-        self._state[K.S_FREQ] = self._hz_to_rad(freq_guess_hz)
+        self._set_nco_frequency(self._hz_to_rad(freq_guess_hz))
         self._pending_freq = None              # re-steer request, consumed by work()
         self._empty_c = np.zeros(0, np.complex64)
         self._empty_f = np.zeros(0, np.float32)
@@ -243,6 +243,8 @@ class mth_power_loop_cc(gr.sync_block):
         st[K.S_PREV_STEP] = rad_per_sample
         st[K.S_FREE_F] = rad_per_sample          # the lock statistic's reference follows too
         st[K.S_FREE_A] = 0.0
+        st[K.S_FREE_LEVEL] = rad_per_sample
+        st[K.S_FREE_TREND] = 0.0
 
     def _steer(self, sample):
         """End of an acquisition block: if unlocked, estimate the offset from z^M and steer.

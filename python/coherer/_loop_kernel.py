@@ -594,17 +594,28 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             slope = (mean_step - prev_step) / lock_window
             prev_step = mean_step
             # the reference's rate: a smoothed level and trend of the NCO's mean step (Holt's
-            # linear method); while locked, the step's disagreement with the prediction is
+            # linear method) at a weak signal, the last window's mean step and its change at a
+            # strong one (no noise to smooth, and it must follow fast dynamics); while locked, the step's disagreement with the prediction is
             # taken modulo a whole M-domain turn per window, so that a cycle slip (which adds
             # 2 pi / M to the NCO phase) does not turn the reference
             last_level = free_level
             predicted = free_level + free_trend
-            seen = mean_step
-            if locked > 0.0:
-                turns = power * lock_window * (mean_step - predicted) / TWO_PI
-                seen -= np.floor(turns + 0.5) * TWO_PI / (power * lock_window)
-            free_level = predicted + FREE_LEVEL_WEIGHT * (seen - predicted)
-            free_trend += FREE_TREND_WEIGHT * (free_level - last_level - free_trend)
+            if strong:
+                seen = mean_step
+                if locked > 0.0:
+                    turns = power * lock_window * (mean_step - predicted) / TWO_PI
+                    seen -= np.floor(turns + 0.5) * TWO_PI / (power * lock_window)
+            elif nco_rel_re != 0.0 or nco_rel_im != 0.0:
+                # weak signal: the NCO's mean M-th power phasor against the reference turns by
+                # about one window's worth of the rate error; it is an average over the
+                # window (little jitter) and blind to slips (2 pi in the M domain)
+                seen = predicted + np.arctan2(nco_rel_im, nco_rel_re) / (power * lock_window)
+            else:
+                seen = mean_step
+            level_weight = 1.0 if strong else FREE_LEVEL_WEIGHT
+            trend_weight = 1.0 if strong else FREE_TREND_WEIGHT
+            free_level = predicted + level_weight * (seen - predicted)
+            free_trend += trend_weight * (free_level - last_level - free_trend)
             free_a = free_trend / lock_window
             free_f = free_level + free_trend - free_a * 0.5 * (lock_window - 1.0)
             # and its phase: turned onto the NCO's mean M-th power phasor over the window (an

@@ -129,16 +129,9 @@ def _same(results, subject):
     assert len(set(values.values())) == 1, f"{subject} differs between processes: {values}"
 
 
-#: The loop kernel (_loop_kernel.mth_power_loop) is compiled with fastmath={'contract'}: LLVM
-#: may then fuse a multiply and an add into one FMA, and which pairs it fuses depends on the
-#: order of numba's generated IR, which follows the hash seed (75 vs 76 FMA instructions
-#: under seeds 0 and 2). Without the flag every seed gives the same bytes.
-LOOP_KERNEL_CONTRACTION = pytest.mark.xfail(
-    strict=False, reason="_loop_kernel.mth_power_loop is compiled with fastmath={'contract'} "
-                         "(FMA contraction depends on the hash seed); fix pending in that file")
-
-
-@LOOP_KERNEL_CONTRACTION
+# The loop kernel is compiled without FMA contraction: with fastmath={'contract'}, which
+# multiply-add pairs LLVM fused followed the order of numba's generated IR, and so the hash
+# seed (75 vs 76 FMA instructions under seeds 0 and 2).
 @pytest.mark.parametrize("subject", ["loop M=2", "loop M=4", "loop M=2 third order"])
 def test_loops_identical_across_processes(chain_digests, subject):
     _same(chain_digests, subject)

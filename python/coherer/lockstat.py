@@ -38,7 +38,9 @@ the window's mean phasor (:func:`null_contrasts`), while noise gives them the va
 P whatever its spectrum, as long as it is correlated over much fewer samples than
 a quarter window (for a correlation length L the scale comes out low by about
 L / (window / 4) in variance; at 16 samples per symbol through a 1024-sample loop
-window, a few per cent). The scale is the lower median of the squared contrasts of the
+window, a few per cent; with quarters of only a few tens of samples the projection
+on the window's direction lowers it by up to about 2 %, measured at 16 samples per
+quarter). The scale is the lower median of the squared contrasts of the
 earlier windows, the last K = REFERENCE_VALUES = 96 of them (32 windows), rather
 than their mean, so that the windows of a strong signal still rotating against
 the reference (a loop pulling in), whose contrasts are large, cannot hold the

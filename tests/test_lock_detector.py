@@ -553,3 +553,38 @@ def test_malformed_upstream_tags_are_ignored(tb):
     assert len(periodic) == 8 and all(m["time_s"] == m["sample"] / FS for m in msgs)
     # status on each window's last sample: the tag at 2000 is seen from the window ending at 2047
     assert [m.get("freq_hz") for m in periodic] == [None] + [50.0] * 7
+
+
+def test_status_after_lock_change_carries_the_loops_current_frequency(tb):
+    """The headless example's scenario (QPSK 15 dB, 3.7 kHz offset drifting at -250 Hz/s,
+    third-order loop, B_L = 100 Hz, window 1024, status every 25000 samples) with no periodic
+    carrier_freq tags: the status that reports the lock must carry the frequency the loop
+    tagged at its own lock change (or last re-steer), not a stale start value. Bound: the NCO
+    frequency at the message's window may differ from that tag by the carrier's drift over the
+    samples between them plus the NCO's own frequency jitter (4 standard deviations of the
+    NCO frequency over the windows before the message, measured on the diagnostics output)."""
+    from gnuradio.coherer import mth_power_loop_cc
+    rng = np.random.default_rng(9300)
+    n, f0, rate = 150_000, 3700.0, -250.0
+    t = np.arange(n) / FS
+    phase = 2 * np.pi * (f0 * t + 0.5 * rate * t * t)
+    x = (psk(rng, n, 4, 15.0) * np.exp(1j * phase)).astype(np.complex64)
+    loop = mth_power_loop_cc(FS, 4, 100.0, loop_order=3, diagnostics=True)
+    det = lock_detector_cc(FS, 4, 1024, status_interval=25000)
+    src = blocks.vector_source_c(x, False)
+    freq = blocks.vector_sink_f()
+    dbg = blocks.message_debug()
+    tb.connect(src, loop, det, blocks.null_sink(gr.sizeof_gr_complex))
+    tb.connect((loop, 1), blocks.null_sink(gr.sizeof_gr_complex))
+    tb.connect((loop, 2), freq)
+    tb.msg_connect((det, metadata.STATUS_PORT), (dbg, "store"))
+    tb.run()
+    nco = np.asarray(freq.data())
+    msgs = messages(dbg)
+    first = next(m for m in msgs if m["locked"])
+    start = int(first["window_start"])
+    assert first["freq_hz"] != 0.0
+    jitter = np.std(nco[max(0, start - 4096):start + 1024])
+    assert abs(first["freq_hz"] - nco[start]) < abs(rate) * 4096 / FS + 4 * jitter + 1.0, \
+        (first["freq_hz"], nco[start], jitter)
+    assert abs(first["freq_hz"] - (f0 + rate * t[start])) < 0.05 * f0

@@ -241,6 +241,19 @@ def test_report_plots_and_summary(tmp_path):
     assert [e["event"] for e in s["events"] if e["event"] != "cycle_slip"] == ["lock", "unlock"]
 
 
+def test_every_sample_of_a_recording_is_processed(tmp_path):
+    # a length that is no multiple of any lock window: the summary counts every sample
+    x = encode(bpsk(seed=16)[:-317], "cf32_le")
+    write_sigmf(tmp_path, "odd", x)
+    report = tmp_path / "report"
+    proc = coherer("run", tmp_path / "odd", *LOOP, "--report", report)
+    assert proc.returncode == 0, proc.stderr
+    s = json.loads((report / "summary.json").read_text())
+    assert s["recording"]["samples_processed"] == s["recording"]["samples_in_file"]
+    assert s["recording"]["samples_in_file"] == len(bpsk(seed=16)) - 317
+    assert "unprocessed" not in proc.stderr
+
+
 # --- annotate -----------------------------------------------------------------------------------
 
 RICH_META = {

@@ -588,3 +588,21 @@ def test_status_after_lock_change_carries_the_loops_current_frequency(tb):
     assert abs(first["freq_hz"] - nco[start]) < abs(rate) * 4096 / FS + 4 * jitter + 1.0, \
         (first["freq_hz"], nco[start], jitter)
     assert abs(first["freq_hz"] - (f0 + rate * t[start])) < 0.05 * f0
+
+
+@pytest.mark.parametrize("n", [4 * 1024, 4 * 1024 + 300, 500])
+def test_loop_then_detector_passes_every_sample(tb, n):
+    """Stream lengths that are and are not a multiple of the window, and shorter than one
+    window: the detector's output equals the loop's output sample for sample."""
+    from gnuradio.coherer import mth_power_loop_cc
+    rng = np.random.default_rng(9400 + n)
+    x = psk(rng, n, 2, 12.0).astype(np.complex64)
+    loop = mth_power_loop_cc(FS, 2, 100.0)
+    det = lock_detector_cc(FS, 2, 1024)
+    src = blocks.vector_source_c(x, False)
+    before, after = blocks.vector_sink_c(), blocks.vector_sink_c()
+    tb.connect(src, loop, det, after)
+    tb.connect(loop, before)
+    tb.run()
+    assert len(after.data()) == len(before.data()) == n
+    np.testing.assert_array_equal(np.asarray(after.data()), np.asarray(before.data()))

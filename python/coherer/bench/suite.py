@@ -21,6 +21,7 @@ from gnuradio import gr
 from .. import _loop_kernel as K
 from ..mth_power_loop_cc import mth_power_loop_cc
 from .._long_calls import CALL_ITEMS
+from ..lock_detector_cc import lock_detector_cc
 from ..squaring_loop_cc import squaring_loop_cc
 from . import creference, measure, soak as soak_mod, stream
 
@@ -56,6 +57,10 @@ def _loop(power, loop_order=2):
 
 def _squaring():
     return squaring_loop_cc(SAMPLE_RATE, NOISE_BW_HZ, acquire=False)
+
+
+def _detector():
+    return lock_detector_cc(SAMPLE_RATE, 2, 1024)
 
 
 def _optional_block(module_name, class_name, *args, **kwargs):
@@ -161,6 +166,9 @@ def run(quick=False, soak=False, soak_samples=SOAK_SAMPLES, progress=None):
         construction, latency = measure.first_sample_latency(_squaring, tmp / "psk2.cf32")
         result["latency"] = {"block": "squaring loop (M=2)", "construction_s": construction,
                              "first_output_s": latency}
+        construction, latency = measure.first_sample_latency(_detector, tmp / "psk2.cf32")
+        result["detector_latency"] = {"block": "lock detector (M=2, window 1024)",
+                                      "construction_s": construction, "first_output_s": latency}
 
         say("compiling the C reference")
         exe, flags = creference.compile_reference(tmp)
@@ -307,10 +315,10 @@ def format_table(result):
     t = result["two_chains"]
     lines += ["", f"two chains on two cores ({t['block']}): {_fig(t['two_chains']['wall'])} Msps "
               f"together vs {_fig(t['one_chain']['wall'])} for one chain = {_r(t['ratio'])}"]
-    lat = result["latency"]
-    first = "none" if lat["first_output_s"] is None else f"{1e3 * lat['first_output_s']:.1f} ms"
-    lines.append(f"first-sample latency ({lat['block']}, fresh block): construction "
-                 f"{1e3 * lat['construction_s']:.0f} ms, tb.start() -> first output {first}")
+    for lat in (result["latency"], result["detector_latency"]):
+        first = "none" if lat["first_output_s"] is None else f"{1e3 * lat['first_output_s']:.1f} ms"
+        lines.append(f"first-sample latency ({lat['block']}, fresh block): construction "
+                     f"{1e3 * lat['construction_s']:.0f} ms, tb.start() -> first output {first}")
     if "soak" in result:
         s = result["soak"]
         lines.append(f"soak: {s['samples']:.3g} samples at {s['msps']:.1f} Msps, RSS "

@@ -110,6 +110,15 @@ def test_warnings_for_unsafe_choices(coherer):
     assert r["acquisition_needed"] is True and r["pull_in_time_s"] is None   # inf -> null in JSON
 
 
+@pytest.mark.parametrize("name, head", [("loop.pdf", b"%PDF-"), ("loop.svg", b"<?xml")])
+def test_plot_in_the_format_its_extension_names(coherer, tmp_path, name, head):
+    # file signatures: PDF 1.7 (ISO 32000-1, 7.5.2 "%PDF-"), SVG as an XML document
+    out = tmp_path / name
+    proc = coherer("--sample-rate", 48000, "--power", 2, "--noise-bw", 50, "--plot", out)
+    assert proc.returncode == 0, proc.stderr
+    assert out.read_bytes()[:len(head)] == head
+
+
 def test_text_report_and_plot(coherer, tmp_path):
     png = tmp_path / "loop.png"
     proc = coherer("--sample-rate", 48000, "--power", 2, "--noise-bw", 50, "--loop-order", 3, "--esn0", 8,

@@ -73,8 +73,9 @@ def register(subparsers):
                         f"called for, s (default {DEFAULT_PULL_IN_BUDGET_S:g})")
     p.add_argument("--doppler-rate", type=si_number, metavar="HZ_PER_S",
                    help="carrier frequency ramp, Hz/s: enables the steady-state ramp error")
-    p.add_argument("--plot", metavar="FILE.png",
-                   help="write phase-step, frequency-step and closed-loop magnitude plots to this PNG file")
+    p.add_argument("--plot", metavar="FILE",
+                   help="write phase-step, frequency-step and closed-loop magnitude plots to this file "
+                        "(.png, .pdf or .svg)")
     p.add_argument("--json", action="store_true", help="print machine-readable JSON instead of text")
     p.add_argument("--suggest", action="store_true",
                    help="choose B_L minimising jitter variance plus squared ramp error "
@@ -417,11 +418,14 @@ def _json_safe(value):
 # --- plot -------------------------------------------------------------------------------
 
 def write_plot(path, d, steps, r):
-    """Phase-step, frequency-step and closed-loop magnitude plots of design ``d`` to a PNG file."""
+    """Phase-step, frequency-step and closed-loop magnitude plots of design ``d`` to a file in
+    the format its extension names (PNG, PDF, SVG)."""
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
     import numpy as np
+
+    from ..report import save_figure
 
     def window(settling_s):
         """Samples of the returned grid up to 1.5 x the settling time (10 / B_L if not settled), and units."""
@@ -485,7 +489,7 @@ def write_plot(path, d, steps, r):
         ax.grid(True, which="both", alpha=0.3)
     fig.tight_layout()
     try:
-        fig.savefig(path, format="png", dpi=100)
+        save_figure(fig, path)
     except OSError as exc:
         raise UserError(f"--plot: cannot write {path}: {exc.strerror or exc}") from None
     finally:

@@ -49,16 +49,20 @@ Lock indicator (internal, drives acquisition): the phase-only statistic
 ``mean cos(M arg y - M point_angle)`` over windows of ``lock_window`` samples
 counted from the start of the stream, decided by the same rule as the lock
 detector (``coherer.lockstat.update_lock``: a threshold referenced to the
-null contrasts of the windows (in-phase quarter differences), so the false-lock probability holds on
-band-limited noise too). A loop partly follows band-limited noise (it tracks
+null contrasts of the windows (quarter differences), so the false-lock
+probability holds on band-limited noise too). A loop partly follows band-limited noise (it tracks
 the slow part of the noise's M-th power phase), which biases the projection of
 its own output toward lock even on noise alone, mostly through the
 proportional path; so the statistic is taken against a reference phasor that
-does not follow the window's own samples: the NCO's M-th power phasor at the
-start of each lock window, advanced at the NCO's mean rate over the last
-window, extrapolated by its change between windows (so a frequency ramp is
-followed). Locked it differs from the NCO only by the NCO's jitter within the
-window.
+does not follow the window's own samples. At the end of each window its phase is
+turned onto the NCO's mean M-th power phasor over that window (an average, so the
+NCO's jitter at one instant does not move it) and its rate set for the next
+window: at a strong signal the NCO's mean step over the last window and its change
+(so a fast frequency ramp is followed), the step's disagreement with the
+prediction taken modulo a whole M-domain turn per window while locked, so that a
+cycle slip does not turn the reference; at a weak signal a smoothed level and trend
+(Holt's linear method) corrected by how far the NCO's mean phasor turned against
+the reference, which is blind to slips.
 
 Cycle slips: a slip is a step of 2*pi/M in the NCO phase relative to the
 carrier. Two trackers watch for it, and the loop SNR 1/(B_L T V_M) estimated from
@@ -152,12 +156,12 @@ S_LINE_IM = 38
 S_LINE_W = 39    # its weight since the last restart (bias correction)
 S_LINE_P = 40    # exponential average of |d|^2 (the line estimate's noise scale)
 S_LINE_ON = 41   # 1.0 while the detector is normalised by the line estimate
-S_FREE_RE = 42   # reference e^{j M theta~} of the lock statistic: the NCO's M-th power phasor at
-S_FREE_IM = 43   # the start of the lock window, advanced at the NCO's rate over earlier windows
+S_FREE_RE = 42   # reference e^{j M theta~} of the lock statistic: set onto the NCO's mean M-th
+S_FREE_IM = 43   # power phasor at each window end, advanced at the rate below in between
 S_FREE_I = 44    # sums of the in-phase and quadrature projection of (y/|y|)^M on the
 S_FREE_Q = 45    # free-running reference over this quarter of the lock window so far
-S_FREE_F = 46    # its step, rad/sample: the NCO's mean step over the last window, extrapolated
-S_FREE_A = 47    # its change per sample (the change of that mean between windows)
+S_FREE_F = 46    # its step, rad/sample (from S_FREE_LEVEL and S_FREE_TREND)
+S_FREE_A = 47    # its change per sample (the trend spread over a window)
 S_QUARTERS = 48  # the window's quarter sums: in-phase 48..51, quadrature 52..55
 S_FREE_LEVEL = 56  # smoothed mean NCO step per window (rad/sample) and its trend per
 S_FREE_TREND = 57  # window: the free-running reference's rate (Holt's linear method)
@@ -595,9 +599,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             prev_step = mean_step
             # the reference's rate: a smoothed level and trend of the NCO's mean step (Holt's
             # linear method) at a weak signal, the last window's mean step and its change at a
-            # strong one (no noise to smooth, and it must follow fast dynamics); while locked, the step's disagreement with the prediction is
-            # taken modulo a whole M-domain turn per window, so that a cycle slip (which adds
-            # 2 pi / M to the NCO phase) does not turn the reference
+            # strong one (no noise to smooth, and it must follow fast dynamics); while locked,
+            # the step's disagreement with the prediction is taken modulo a whole M-domain
+            # turn per window, so that a cycle slip (2 pi / M of NCO phase) does not turn it
             last_level = free_level
             predicted = free_level + free_trend
             if strong:

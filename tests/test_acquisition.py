@@ -6,6 +6,7 @@ import math
 import numpy as np
 import pytest
 from scipy.optimize import brentq
+from numba import njit
 from scipy.special import i0
 
 from gnuradio import coherer
@@ -119,15 +120,30 @@ def esn0_for_loop_snr(power, bt, rho_psi):
                          - rho_psi, -20, 30) / 10)
 
 
-LINE_JITTER_BIAS = pytest.mark.xfail(
-    strict=True, reason="known defect: while locked the detector is normalised by the averaged "
-    "M-th power line, which the loop's own jitter shrinks by E[cos M phi] (about 0.8 at loop SNR "
-    "2.5): the loop gain is that much high and slips come 1.4x as often as the formula says")
+@njit(cache=False)
+def _textbook_first_order_slips(z, gain):
+    """Slips of the textbook first-order M-th power loop psi^ += G Im(z e^{-j psi^}), with z
+    the M-th power of the input divided by its known line (so the detector slope is exactly
+    1), counted with the same 3*pi/2 hysteresis in the M domain as count_true_slips."""
+    psi = 0.0
+    centre = 0.0
+    count = 0
+    for n in range(z.shape[0]):
+        d = -psi - centre
+        if d > 1.5 * np.pi or d < -1.5 * np.pi:
+            centre += 2 * np.pi if d > 0 else -2 * np.pi
+            count += 1
+        psi += gain * (z[n] * np.exp(-1j * psi)).imag
+    return count
 
 
-@pytest.mark.parametrize("rho_psi, power", [(2.0, 2), (2.0, 4), (2.5, 2),
-                                            pytest.param(2.5, 4, marks=LINE_JITTER_BIAS)])
+@pytest.mark.parametrize("rho_psi, power", [(2.0, 2), (2.0, 4), (2.5, 2), (2.5, 4)])
 def test_first_order_mean_time_to_slip_and_slip_tags(power, rho_psi):
+    """At B_L T = 0.02 and loop SNR 2-2.5 the mean time to a slip departs from Viterbi's
+    Gaussian formula (REFERENCES 5) by up to 1.5x for M = 2 (the z^M noise is far from
+    Gaussian at Es/N0 near -4 dB), so the loop is checked against a textbook first-order loop
+    run on the same samples with the exact line and gain: any error of the loop's own
+    normalisation (the line estimate) changes its loop SNR and so its slip rate."""
     bt, settle = 0.02, 2_000
     n = 3_000_000 if rho_psi == 2.0 else 4_000_000
     esn0 = esn0_for_loop_snr(power, bt, rho_psi)
@@ -137,13 +153,36 @@ def test_first_order_mean_time_to_slip_and_slip_tags(power, rho_psi):
     x, _ = mpsk(rng, power, n, 10 * math.log10(esn0), 0.0)
     run = run_loop(x, power=power, noise_bw_hz=bt, loop_order=1, acquire=False, point_angle=0.0)
     true = count_true_slips(np.zeros(n), run.ref, power, start=settle)
+    # the reference: unit-energy PSK in noise of power 1/esn0, so z = (x / sqrt(M2))^M has
+    # the line (Es / M2)^(M/2); a first-order loop's noise bandwidth is B_L T = G / (2 (2 - G))
+    # (REFERENCES 1.3: the sum of the squared impulse response, halved)
+    line = (esn0 / (1 + esn0)) ** (power / 2)
+    z = (x.astype(np.complex128) * np.sqrt(esn0 / (1 + esn0))) ** power / line
+    reference = _textbook_first_order_slips(z[settle:], 4 * bt / (1 + 2 * bt))
+    assert len(true) >= 300 and reference >= 300
+    # slips of a first-order loop are nearly a Poisson process: each count has a relative
+    # standard error 1/sqrt(count); 3 combined standard errors (the two share their noise,
+    # which only makes the difference smaller)
+    ratio = reference / len(true)
+    assert abs(ratio - 1) <= 3 * math.sqrt(1 / len(true) + 1 / reference), (len(true), reference)
+    # and Viterbi's formula within the factor 1.5 the reference loop itself shows here
     mean_time = (n - settle) / len(true)
-    # first-order loop: the mean spacing of slips estimates the mean first-passage time;
-    # REFERENCES 5 allows a factor 1.3 either way (non-Gaussian z^M noise, large B_L T)
-    assert expected / 1.3 < mean_time < 1.3 * expected, (mean_time, expected)
+    assert expected / 1.5 < mean_time < 1.5 * expected, (mean_time, expected)
     tags = [(o, v) for o, v in run.tags_with("cycle_slip") if o >= settle]
-    assert len(true) >= 300                      # Poisson s.e. <= 6 %
     assert abs(sum(abs(v) for _, v in tags) - len(true)) <= 0.10 * len(true)
+
+
+def test_first_order_worked_example_time_to_slip():
+    # Source: REFERENCES 5 worked example, M = 4, Es/N0 = 3 dB, B_L T = 0.02: simulated
+    # first-order mean time to a slip 718 +- 21 symbols (Viterbi's formula: 642). Tolerance:
+    # 3 combined standard errors (the example's 21 and ours, 1/sqrt(slips) of the mean).
+    bt, n, settle = 0.02, 2_000_000, 2_000
+    rng = np.random.default_rng(91)
+    x, _ = mpsk(rng, 4, n, 3.0, 0.0)
+    run = run_loop(x, power=4, noise_bw_hz=bt, loop_order=1, acquire=False, point_angle=0.0)
+    times = count_true_slips(np.zeros(n), run.ref, 4, start=settle)
+    mean_time = (n - settle) / len(times)
+    assert abs(mean_time - 718) <= 3 * math.hypot(21, mean_time / math.sqrt(len(times)))
 
 
 def test_second_order_time_to_slip_inside_simulated_band():

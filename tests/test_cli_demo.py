@@ -133,9 +133,6 @@ def test_demo_phase_error_rms_agrees_with_theory(demo, scenario):
         assert abs(esn0["measured"] - st.esn0_db) <= 0.5, esn0
 
 
-@pytest.mark.xfail(strict=True, reason="known defect: the slip trackers' noise gates assume white "
-                   "detector noise, and on the oversampled band-limited demo signal they declare "
-                   "slips the loop did not make (the loop's phase error stays within 2 deg rms)")
 def test_demo_slips_agree_with_truth(demo, scenario):
     """The loop must declare the slips it actually made at the oscillator jump (the change
     of the true phase error in units of 2 pi/M, measured by the demo from the loop's

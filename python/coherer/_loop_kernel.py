@@ -19,8 +19,13 @@ While the loop's own lock indicator says locked, ``A_M = |<d>|``, the
 bias-corrected exponential average of d itself (over about
 ``2 / LINE_ALPHA`` samples, restarted when lock is declared and at a level
 step), used once it stands 8 standard errors out of its own noise. Circular
-noise adds nothing to the mean of d, so this is unbiased at any SNR, and it is
-exactly the slope of the detector whatever the signal's shape: a pulse-shaped
+noise adds nothing to the mean of d. Measured against the NCO, the average is
+shrunk by the loop's own jitter, by E[cos M phi] (0.8 at a loop SNR of 2.5,
+which would make the loop gain that much high); so it is also measured against
+the slip tracker's slow reference (below), which does not carry that jitter but
+is shrunk while it still settles after lock. Neither exceeds the line but by
+noise, and the larger of the two is used. This is the slope of the detector
+whatever the signal's shape: a pulse-shaped
 (oversampled, non-constant-envelope) PSK signal, or a residual carrier that
 shares its power with data (line = cos(index) of the total). The loop's
 actual noise bandwidth is then the designed one. While acquiring (no lock
@@ -83,7 +88,12 @@ a level step) chooses which one decides:
   d/|d| (which follows everything the loop follows) is compared with its
   stable point 2*pi*k; a departure beyond 3*pi/2 is a slip, provided the
   phasor still stands 4 noise standard deviations (sqrt(beta/4) each) out of
-  the noise, so that a carrier that has just vanished does not count. A residual
+  the noise, so that a carrier that has just vanished does not count. The low-pass
+  is fast (8 B_L T) so that its angle follows the turns of a loop that slips
+  while it re-settles after a frequency jump, and the count goes on through an
+  unlock for as long as the phasor stays coherent at every evaluation (the loop
+  slipping but still holding the signal); once it is not, the count stops until
+  the next lock. A residual
   excursion of the reference then only means the loop followed a frequency
   change: the reference is brought along without declaring anything.
 
@@ -152,7 +162,7 @@ S_INV_RMS = 34   # 1/sqrt(M2) in use, 1/amplitude
 S_INV_NORM = 35  # 1/(S/M2)^(M/2) in use
 S_CAP = 36       # limiter threshold in use, power units (0: no moments yet)
 S_LINE_RE = 37   # exponential average of the detector d: the M-th power line (M-domain phasor)
-S_LINE_IM = 38
+S_LINE_IM = 38   # measured against the NCO
 S_LINE_W = 39    # its weight since the last restart (bias correction)
 S_LINE_P = 40    # exponential average of |d|^2 (the line estimate's noise scale)
 S_LINE_ON = 41   # 1.0 while the detector is normalised by the line estimate
@@ -167,7 +177,13 @@ S_FREE_LEVEL = 56  # smoothed mean NCO step per window (rad/sample) and its tren
 S_FREE_TREND = 57  # window: the free-running reference's rate (Holt's linear method)
 S_NCO_REL_RE = 58  # sum over this lock window of the NCO's M-th power phasor against the
 S_NCO_REL_IM = 59  # reference: where the NCO sat on average, relative to the reference
-STATE_SIZE = 60
+S_SLOW_RE = 60   # e^{j M ref_r}: the slip tracker's slow reference against the NCO (M domain),
+S_SLOW_IM = 61   # advanced with ref_r, recomputed exactly at each NCO resync
+S_SLOW_LINE_RE = 62  # the same average of d measured against the slow reference, d e^{j M ref_r}
+S_SLOW_LINE_IM = 63
+S_ANGLE_COUNTS = 64  # 1.0 while the detector angle counts slips: from lock on, and after an
+                     # unlock for as long as the detector phasor stays coherent at a strong signal
+STATE_SIZE = 65
 
 # params[] layout ------------------------------------------------------------------
 P_K1 = 0
@@ -330,6 +346,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     quarters = state[S_QUARTERS:S_QUARTERS + 8]     # a view: written in place
     line_re = state[S_LINE_RE]
     line_im = state[S_LINE_IM]
+    slow_line_re = state[S_SLOW_LINE_RE]
+    slow_line_im = state[S_SLOW_LINE_IM]
     line_w = state[S_LINE_W]
     line_p = state[S_LINE_P]
     line_on = state[S_LINE_ON]
@@ -338,6 +356,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     locked = state[S_LOCKED]
     metric = state[S_METRIC]
     ref_r = state[S_REF_R]
+    slow_re = state[S_SLOW_RE]
+    slow_im = state[S_SLOW_IM]
     ref_f = state[S_REF_F]
     ref_a = state[S_REF_A]
     slips = state[S_SLIPS]
@@ -366,6 +386,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     psi_ref = state[S_PSI_REF]
     slip_pos = state[S_SLIP_POS]
     strong = state[S_STRONG] > 0.0
+    angle_counts = state[S_ANGLE_COUNTS]
 
     want_ref = ref.shape[0] > 0
     want_freq = freq.shape[0] > 0
@@ -392,6 +413,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             rf_im = np.sin(nco_ref)
             rm_re = np.cos(power * nco_ref)
             rm_im = np.sin(power * nco_ref)
+            slow_re = np.cos(power * ref_r)
+            slow_im = np.sin(power * ref_r)
             nco_left = NCO_RESYNC
         nco_left -= 1.0
         norm_left -= 1.0
@@ -440,6 +463,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                     norm_left = 0.0
                     line_re = 0.0
                     line_im = 0.0
+                    slow_line_re = 0.0
+                    slow_line_im = 0.0
                     line_w = 0.0
                     line_p = 0.0
             else:
@@ -457,7 +482,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                 # (bias-corrected average of d; its variance from the average of |d|^2)
                 line_on = 0.0
                 if locked > 0.0 and line_w > 0.0:
-                    lm2 = (line_re * line_re + line_im * line_im) / (line_w * line_w)
+                    lm2 = max(line_re * line_re + line_im * line_im,
+                              slow_line_re * slow_line_re + slow_line_im * slow_line_im)
+                    lm2 /= line_w * line_w
                     spread = (line_p / line_w) * line_var_k * (1.0 - (1.0 - line_w) ** 2) / (line_w * line_w)
                     if lm2 > LINE_SIGNIFICANCE * spread:
                         inv_norm = 1.0 / np.sqrt(lm2)
@@ -496,16 +523,24 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             phase += last_step
             # lock statistic: cos(M arg y) = Re(d)/|d|
             mag = half_power(p * inv_rms * inv_rms, power)   # |d| = (p/M2)^(M/2)
+            # the line, measured twice: against the NCO (shrunk by the loop's jitter,
+            # E[cos M phi]) and against the slip tracker's slow reference, d e^{j M ref_r}
+            # (free of that jitter, but shrunk while the reference itself still settles);
+            # neither can exceed the line but by noise, so the larger is used
             line_re += line_alpha * (d.real - line_re)
             line_im += line_alpha * (d.imag - line_im)
+            slow_line_re += line_alpha * (d.real * slow_re - d.imag * slow_im - slow_line_re)
+            slow_line_im += line_alpha * (d.real * slow_im + d.imag * slow_re - slow_line_im)
+            zf_re = z.real * free_re + z.imag * free_im
+            zf_im = z.imag * free_re - z.real * free_im
             line_w += line_alpha * (1.0 - line_w)
             line_p += line_alpha * (mag * mag - line_p)
             if mag > 0.0:
                 inv_mag = 1.0 / mag
                 ur = d.real * inv_mag
                 lock_n += 1.0
-                free_i += (z.real * free_re + z.imag * free_im) * inv_mag
-                free_q += (z.imag * free_re - z.real * free_im) * inv_mag
+                free_i += zf_re * inv_mag
+                free_q += zf_im * inv_mag
                 lp_re += lp_beta * (ur - lp_re)
                 lp_im += lp_beta * (d.imag * inv_mag - lp_im)
             if want_err:
@@ -546,7 +581,11 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             psi_last = a
             dev = psi - psi_ref
             coherent = lp_re * lp_re + lp_im * lp_im > LP_NOISE_FLOOR * lp_beta
-            if (locked > 0.0 and strong and coherent
+            if locked > 0.0 and strong:
+                angle_counts = 1.0
+            elif not (strong and coherent):
+                angle_counts = 0.0
+            if (angle_counts > 0.0 and strong and coherent
                     and (dev > ANGLE_DEPARTURE or dev < -ANGLE_DEPARTURE)):
                 step = -1.0 if dev > 0.0 else 1.0     # detector angle up = NCO fell behind
                 psi_ref -= step * TWO_PI
@@ -554,7 +593,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                 slip_at[n_slips] = n
                 slip_count[n_slips] = int(step)
                 n_slips += 1
-            elif not (locked > 0.0 and strong):
+            elif angle_counts == 0.0:
                 psi_ref = TWO_PI * np.floor(psi / TWO_PI + 0.5)
         if locked > 0.0:
             g1, g2, g3 = slow_g1, slow_g2, slow_g3
@@ -566,7 +605,9 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                     break
             ref_a += g3 * ref_r
             ref_f += g2 * ref_r + ref_a
-            ref_r += nco_step - g1 * ref_r - ref_f
+            ref_step = nco_step - g1 * ref_r - ref_f
+            ref_r += ref_step
+            slow_re, slow_im = _rotate(slow_re, slow_im, power * ref_step)
             if ref_r > slip_threshold or ref_r < -slip_threshold:
                 if strong:
                     # the detector angle decides: the loop followed a frequency change
@@ -574,6 +615,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                     ref_r = 0.0
                     ref_f = acc1 + last_step
                     ref_a = acc2
+                    slow_re = 1.0
+                    slow_im = 0.0
                 else:
                     step = 1.0 if ref_r > 0.0 else -1.0
                     ref_r -= step * slip_step
@@ -650,9 +693,13 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                     locked = 1.0
                     line_re = 0.0
                     line_im = 0.0
+                    slow_line_re = 0.0
+                    slow_line_im = 0.0
                     line_w = 0.0
                     line_p = 0.0
                     ref_r = 0.0
+                    slow_re = 1.0
+                    slow_im = 0.0
                     ref_f = mean_step + 0.5 * lock_window * slope
                     ref_a = acc2 if k3 > 0.0 else slope    # a 3rd-order loop knows the rate
                     ref_age = 0.0
@@ -695,6 +742,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_FREE_TREND] = free_trend
     state[S_LINE_RE] = line_re
     state[S_LINE_IM] = line_im
+    state[S_SLOW_LINE_RE] = slow_line_re
+    state[S_SLOW_LINE_IM] = slow_line_im
     state[S_LINE_W] = line_w
     state[S_LINE_P] = line_p
     state[S_LINE_ON] = line_on
@@ -703,6 +752,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_LOCKED] = locked
     state[S_METRIC] = metric
     state[S_REF_R] = ref_r
+    state[S_SLOW_RE] = slow_re
+    state[S_SLOW_IM] = slow_im
     state[S_REF_F] = ref_f
     state[S_REF_A] = ref_a
     state[S_SLIPS] = slips
@@ -727,4 +778,5 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_PSI_REF] = psi_ref
     state[S_SLIP_POS] = slip_pos
     state[S_STRONG] = 1.0 if strong else 0.0
+    state[S_ANGLE_COUNTS] = angle_counts
     return processed, n_slips, n_locks

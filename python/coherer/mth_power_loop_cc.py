@@ -36,7 +36,7 @@ SLIP_REFERENCE_BW = 0.05
 SLIP_REFERENCE_STAGES_BW = (1.0, 0.4, 0.15)
 #: Low-pass coefficient, per unit B_L T, of the detector phasor whose angle decides slips
 #: while the signal is strong.
-SLIP_ANGLE_BETA_PER_BT = 2.0
+SLIP_ANGLE_BETA_PER_BT = 8.0
 #: Most events remembered by acquisition_log() and lock_log().
 EVENT_LOG = 1000
 
@@ -237,6 +237,8 @@ class mth_power_loop_cc(gr.sync_block):
         st[K.S_FREQ] = rad_per_sample
         st[K.S_ACC2] = 0.0
         st[K.S_REF_R] = 0.0
+        st[K.S_SLOW_RE], st[K.S_SLOW_IM] = 1.0, 0.0
+        st[K.S_ANGLE_COUNTS] = 0.0               # the detector angle jumps with the NCO
         st[K.S_REF_F] = rad_per_sample
         st[K.S_REF_A] = 0.0
         st[K.S_WIN_STEPS] = 0.0

@@ -138,7 +138,8 @@ def judge(result, sc):
             actual = -int(np.round(np.median(unwrapped[after]) - np.median(unwrapped[before])))
     lost = [e["time_s"] for e in result.events if e["event"] == "unlock"
             and sc.jump_s <= e["time_s"] < sc.jump_s + SLIP_WINDOW_S]
-    note = (f"the detector lost lock at {lost[0]:.2f} s: slips while unlocked are not listed"
+    note = (f"the lock detector reported unlock at {lost[0]:.2f} s; the loop counts slips through "
+            "an unlock while its detector phasor stays coherent"
             if lost else "")
     add(f"cycle slips at the {sc.jump_hz:+.0f} Hz jump", declared, actual, "exact", "x 2pi/M",
         actual is not None and declared == actual, note)

@@ -122,7 +122,7 @@ def test_stdout_has_one_block_per_carrier(three):
 
 
 def test_channel_sample_maps_to_capture_through_the_filter_delay():
-    # an impulse through the framework's freq_xlating_fir_filter_ccc must come out at the
+    # an impulse through the channel's framework blocks (NCO, decimating FIR) must come out at the
     # channel sample the plan maps back to the impulse's capture sample
     code = r"""
 import numpy as np

@@ -1,9 +1,10 @@
 # SPDX-License-Identifier: GPL-3.0-or-later
 """Several carriers in one wideband recording: one channel per carrier.
 
-Each carrier's channel is cut out of the capture by the framework's
-``freq_xlating_fir_filter_ccc`` (translate to zero, low-pass, decimate), with
-taps from ``firdes.low_pass``, and then runs the same loop -> lock detector ->
+Each carrier's channel is cut out of the capture: a stateless mixer moves the
+carrier to zero (see :func:`translate` for why not the framework's oscillators),
+the framework's decimating ``fir_filter_ccf`` with taps from ``firdes.low_pass``
+filters, and then runs the same loop -> lock detector ->
 collector chain as a single carrier (:func:`coherer.receiver.build_chain`).
 
 Channel size: the channel keeps ``bandwidth_hz`` (the occupied band of an RRC
@@ -25,6 +26,7 @@ from math import floor
 from types import SimpleNamespace
 
 import numpy as np
+from gnuradio import gr
 
 from . import receiver
 
@@ -110,13 +112,37 @@ def decimation_for(sample_rate, bandwidth_hz, symbol_rate_hz=None, oversample=CH
     return max(1, int(floor(sample_rate / need + WHOLE_TOLERANCE)))
 
 
+class _mixer(gr.sync_block):
+    """x[n] e^{-j 2 pi f n / fs}, the phase taken from the absolute sample index n, so
+    every sample gets the same value however the stream is cut (vectorised, no state)."""
+
+    def __init__(self, freq_hz, sample_rate):
+        gr.sync_block.__init__(self, name="coherer_mixer", in_sig=[np.complex64], out_sig=[np.complex64])
+        self._cycles_per_sample = float(freq_hz) / float(sample_rate)
+
+    def work(self, input_items, output_items):
+        x = input_items[0]
+        n = self.nitems_read(0) + np.arange(len(x), dtype=np.int64)
+        frac = np.mod(n * self._cycles_per_sample, 1.0)
+        output_items[0][:] = x * np.exp(-2j * np.pi * frac).astype(np.complex64)
+        return len(x)
+
+
 def translate(tb, head, plan):
-    """Add the channel filter of ``plan`` to ``tb``, fed from ``head``; returns it."""
+    """Add the channel of ``plan`` to ``tb``, fed from ``head``; returns its last block
+    (kept referenced by the flowgraph's owner).
+
+    The carrier is moved to zero by :class:`_mixer`, then the framework's decimating
+    ``fir_filter_ccf`` low-pass filters. The framework's own oscillators would be the
+    first choice, but ``freq_xlating_fir_filter_ccc`` and ``rotator_cc`` renormalise
+    their phase per call and ``sig_source_c`` differed between two identical runs
+    (measured: 2.4e-7), and results must not depend on how the stream is cut.
+    """
     from gnuradio import filter as gr_filter
-    xlate = gr_filter.freq_xlating_fir_filter_ccc(plan.decimation, list(plan.taps),
-                                                  float(plan.carrier_hz), float(plan.sample_rate))
-    tb.connect(head, xlate)
-    return xlate
+    mix = _mixer(plan.carrier_hz, plan.sample_rate)
+    lowpass = gr_filter.fir_filter_ccf(plan.decimation, [float(t) for t in plan.taps])
+    tb.connect(head, mix, lowpass)
+    return lowpass, mix
 
 
 def channelise(samples, plan):
@@ -125,7 +151,7 @@ def channelise(samples, plan):
     from gnuradio import blocks, gr
     tb = gr.top_block("coherer_channelise")
     src = blocks.vector_source_c(np.asarray(samples, dtype=np.complex64), False)
-    xlate = translate(tb, src, plan)
+    xlate, mix = translate(tb, src, plan)
     snk = blocks.vector_sink_c()
     tb.connect(xlate, snk)
     tb.run()
@@ -246,10 +272,10 @@ def build_channels(tb, head, rec, settings, plans):
     chains (:class:`coherer.receiver.CarrierChain`)."""
     chains = []
     for plan in plans:
-        xlate = translate(tb, head, plan)
+        xlate, mix = translate(tb, head, plan)
         chain = receiver.build_chain(tb, xlate, plan.channel_rate, plan.channel_samples(rec.num_samples),
                                      channel_settings(settings, plan), plan.timing)
-        chain.others.append(xlate)
+        chain.others += [xlate, mix]
         chains.append(chain)
     return chains
 

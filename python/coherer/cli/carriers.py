@@ -45,6 +45,26 @@ def add_options(g):
     g.add_argument("--channel-bw", type=errors.positive_number, metavar="HZ",
                    help="with --carrier: the band kept around every carrier, Hz (default: symbol "
                         "rate x 1.35, the rate given or estimated per carrier)")
+    g.add_argument("--workers", type=_worker_count, default=0, metavar="N",
+                   help="with --carrier: run the carriers' chains in N worker processes on this "
+                        "host (connected over ZeroMQ on loopback); the results are the same")
+    g.add_argument("--worker", action="append", default=[], metavar="ENDPOINT",
+                   help="with --carrier: also use the worker at tcp://HOST:PORT (started there "
+                        "with 'coherer worker --listen tcp://0.0.0.0:PORT'); repeatable")
+
+
+#: Most local worker processes.
+MAX_WORKERS = 64
+
+
+def _worker_count(text):
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
+    if not 1 <= v <= MAX_WORKERS:
+        raise argparse.ArgumentTypeError(f"must be an integer in 1..{MAX_WORKERS}, got {text}")
+    return v
 
 
 def _library_message(msg):
@@ -129,6 +149,25 @@ def write_report(results, folder):
     report.write_json(folder / "summary.json", {"carriers": carriers})
 
 
+def check_workers(args):
+    """--workers / --worker need --carrier, and endpoints must be tcp://HOST:PORT."""
+    from .worker import check_endpoint
+    if (args.workers or args.worker) and not args.carrier:
+        raise UserError("--workers and --worker need --carrier")
+    for ep in args.worker:
+        check_endpoint(ep, "--worker")
+
+
+def _spread(args, rec, settings, plans, bar):
+    from ..spread import run_spread, start_local_workers, stop_local_workers
+    local = start_local_workers(args.workers) if args.workers else []
+    try:
+        endpoints = [ep for ep, _ in local] + list(args.worker)
+        return run_spread(rec, settings, plans, endpoints, progress=bar, processes=dict(local))
+    finally:
+        stop_local_workers(local)
+
+
 def process(args, rec, settings, out):
     """Plan, run and print; returns the list of :class:`coherer.channels.CarrierResult`."""
     from .. import report
@@ -142,7 +181,10 @@ def process(args, rec, settings, out):
         print(f"coherer: warning: {note}", file=sys.stderr)
     bar = Progress("coherer run")
     try:
-        results = run_channels(rec, settings, plans, progress=bar)
+        if args.workers or args.worker:
+            results = _spread(args, rec, settings, plans, bar)
+        else:
+            results = run_channels(rec, settings, plans, progress=bar)
     except ValueError as exc:      # a block rejected a setting
         raise UserError(_library_message(str(exc))) from None
     except ReceiverError:

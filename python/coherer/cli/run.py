@@ -274,6 +274,7 @@ def annotations(result):
 
 def main(args):
     from ..recording import RecordingError, merge_annotations
+    from ..spread import WorkerError
     from .console import clean_stdout
 
     rec = open_input(args)
@@ -295,6 +296,7 @@ def main(args):
     if args.channel_bw is not None and not args.carrier:
         raise UserError("--channel-bw needs --carrier")
     from . import carriers
+    carriers.check_workers(args)
     try:
         with clean_stdout() as out:
             if args.carrier:
@@ -319,4 +321,7 @@ def main(args):
     except KeyboardInterrupt:
         print("coherer: interrupted; nothing was annotated", file=sys.stderr)
         return 130
+    except WorkerError as exc:
+        print(f"coherer: error: {exc}; nothing was annotated", file=sys.stderr)
+        return 1
     return 0

@@ -29,6 +29,7 @@ import numpy as np
 from gnuradio import gr
 
 from . import receiver
+from ._long_calls import request_long_calls
 
 #: Fewest samples per symbol a channel runs at.
 CHANNEL_SPS = 4
@@ -119,9 +120,10 @@ class _mixer(gr.sync_block):
     def __init__(self, freq_hz, sample_rate):
         gr.sync_block.__init__(self, name="coherer_mixer", in_sig=[np.complex64], out_sig=[np.complex64])
         self._cycles_per_sample = float(freq_hz) / float(sample_rate)
+        self._skip = request_long_calls(self)     # leading history samples work() skips
 
     def work(self, input_items, output_items):
-        x = input_items[0]
+        x = input_items[0][self._skip:]           # the history is there only for the buffer size
         n = self.nitems_read(0) + np.arange(len(x), dtype=np.int64)
         frac = np.mod(n * self._cycles_per_sample, 1.0)
         output_items[0][:] = x * np.exp(-2j * np.pi * frac).astype(np.complex64)

@@ -36,8 +36,13 @@ def carrier_spec(text):
     return f, power
 
 
+#: Most local worker processes.
+MAX_WORKERS = 64
+
+
 def add_options(g):
     """The several-carrier options of ``coherer run``."""
+    from .run import int_in
     g.add_argument("--carrier", type=carrier_spec, action="append", metavar="HZ[:M]",
                    help="a carrier to receive, Hz from the capture centre, optionally with its "
                         "own M (e.g. -300k:2, 50k:4); repeat for several carriers, each gets "
@@ -45,26 +50,12 @@ def add_options(g):
     g.add_argument("--channel-bw", type=errors.positive_number, metavar="HZ",
                    help="with --carrier: the band kept around every carrier, Hz (default: symbol "
                         "rate x 1.35, the rate given or estimated per carrier)")
-    g.add_argument("--workers", type=_worker_count, default=0, metavar="N",
+    g.add_argument("--workers", type=int_in(1, MAX_WORKERS), default=0, metavar="N",
                    help="with --carrier: run the carriers' chains in N worker processes on this "
                         "host (connected over ZeroMQ on loopback); the results are the same")
     g.add_argument("--worker", action="append", default=[], metavar="ENDPOINT",
                    help="with --carrier: also use the worker at tcp://HOST:PORT (started there "
                         "with 'coherer worker --listen tcp://0.0.0.0:PORT'); repeatable")
-
-
-#: Most local worker processes.
-MAX_WORKERS = 64
-
-
-def _worker_count(text):
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
-    if not 1 <= v <= MAX_WORKERS:
-        raise argparse.ArgumentTypeError(f"must be an integer in 1..{MAX_WORKERS}, got {text}")
-    return v
 
 
 def _library_message(msg):

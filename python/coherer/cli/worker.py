@@ -33,8 +33,10 @@ def register(subparsers):
 
 
 def main(args):
+    from .._warmup import COMMAND_GROUPS, prepare
     from ..worker import serve
     endpoint = check_endpoint(args.listen, "--listen")
+    prepare(COMMAND_GROUPS["run"])          # a cold kernel cache: compile before the first job
     try:
         serve(endpoint)
     except RuntimeError as exc:

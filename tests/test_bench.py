@@ -193,3 +193,17 @@ def test_first_sample_latency_is_measured(tmp_path):
     construction, latency = measure.first_sample_latency(
         lambda: mth_power_loop_cc(SAMPLE_RATE, 2, NOISE_BW_HZ, acquire=False), path)
     assert construction > 0 and latency is not None and latency > 0
+
+
+def test_carriers_quick_json_is_consistent():
+    proc = clirunner.coherer("bench", "--carriers", "--quick", "--json", timeout=600)
+    assert proc.returncode == 0, proc.stderr
+    r = json.loads(proc.stdout)                # the whole of stdout is one JSON document
+    # the channels the acceptance asks for: 25 ksym/s at 4 samples per symbol
+    assert r["symbol_rate"] == 25e3 and r["channel_rate"] == 4 * r["symbol_rate"]
+    # derived figures follow from the measured times (no speed is asserted)
+    assert r["carriers_per_core"] == pytest.approx(r["carriers"] * r["capture_s"] / r["one_process"]["cpu_s"])
+    n = r["capture_s"] * r["capture_rate"]
+    for k in ("workers_1", "workers_2"):
+        assert r[k]["rate"] == pytest.approx(n / r[k]["wall_s"])
+    assert r["two_vs_one_workers"] == pytest.approx(r["workers_2"]["rate"] / r["workers_1"]["rate"])

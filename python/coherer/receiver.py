@@ -75,26 +75,34 @@ def symbol_timing(rec, settings):
     """The detector's samples per symbol: from ``settings.symbol_rate_hz`` when given,
     else estimated from the recording (the spectral line of |x|^2); one sample per
     symbol when no line is found."""
+    from .recording import read_samples
+    return stream_timing(lambda start, count: read_samples(rec, start, count), rec.sample_rate,
+                         rec.num_samples, settings.symbol_rate_hz)
+
+
+def stream_timing(read, sample_rate, num_samples, symbol_rate_hz=None, max_samples=SYMBOL_RATE_SAMPLES):
+    """:func:`symbol_timing` for any stream of ``num_samples`` samples at ``sample_rate``
+    (samples/s) that ``read(start, count)`` returns pieces of; at most ``max_samples``
+    of them are analysed."""
     from .lock_detector_cc import MAX_SAMPLES_PER_SYMBOL
 
     def whole(exact):          # the detector works at a whole number of samples per symbol
         return int(min(MAX_SAMPLES_PER_SYMBOL, max(1, round(exact))))
 
-    fs = rec.sample_rate
-    if settings.symbol_rate_hz is not None:
-        exact = fs / settings.symbol_rate_hz
-        return SymbolTiming("given", float(settings.symbol_rate_hz), whole(exact), exact)
-    from .recording import read_samples
+    fs = sample_rate
+    if symbol_rate_hz is not None:
+        exact = fs / symbol_rate_hz
+        return SymbolTiming("given", float(symbol_rate_hz), whole(exact), exact)
     from .symbolrate import estimate_symbol_rate
-    n = min(rec.num_samples, SYMBOL_RATE_SAMPLES)
+    n = min(num_samples, max_samples)
     if n < SYMBOL_RATE_MIN_SAMPLES:
         return SymbolTiming("none", None, 1, note="recording too short to estimate the symbol rate; "
                                                   "treated as one sample per symbol")
-    if rec.num_samples <= n:
-        est = estimate_symbol_rate(read_samples(rec, 0, n), fs, max_samples=n)
+    if num_samples <= n:
+        est = estimate_symbol_rate(read(0, n), fs, max_samples=n)
     else:                      # four blocks spread over a long recording
         size = n // 4
-        parts = [read_samples(rec, (rec.num_samples - size) * i // 3, size) for i in range(4)]
+        parts = [read((num_samples - size) * i // 3, size) for i in range(4)]
         est = estimate_symbol_rate(np.concatenate(parts), fs, max_samples=n, blocks=4)
     if not est.detected:
         return SymbolTiming("none", None, 1, line_to_floor_db=float(est.line_to_floor_db),
@@ -351,7 +359,7 @@ class ReceiverError(RuntimeError):
     """The flowgraph failed while running (an internal problem, not bad input)."""
 
 
-def _source_chain(tb, rec):
+def source_chain(tb, rec):
     """File source plus conversion to complex64; returns the block to connect from,
     and the list of blocks (kept referenced while the flowgraph lives)."""
     fmt = rec.fmt
@@ -383,16 +391,23 @@ def _source_chain(tb, rec):
     return chain[-1], chain
 
 
-def run_receiver(rec, settings, progress=None):
-    """Run the receive chain over recording ``rec`` (a :class:`coherer.recording.Recording`).
+@dataclass
+class CarrierChain:
+    """The blocks of one carrier's chain in a flowgraph (kept referenced while it lives)."""
+    loop: object
+    detector: object
+    sink: _collector
+    timing: SymbolTiming
+    window: int
+    settings: ReceiverSettings
+    others: list = field(default_factory=list)
 
-    ``progress(done_samples, total_samples)`` is called about five times a second
-    while the flowgraph runs. Raises ``ValueError`` for settings the blocks reject and
-    :class:`ReceiverError` if the flowgraph fails.
-    """
-    fs = rec.sample_rate
-    total = rec.num_samples
-    timing = symbol_timing(rec, settings)
+
+def build_chain(tb, head, sample_rate, total, settings, timing):
+    """Add loop -> (matched filter) -> lock detector -> collector to ``tb``, fed from
+    ``head`` (a block or (block, port) giving complex64 at ``sample_rate`` samples/s,
+    ``total`` samples in all). Returns the :class:`CarrierChain`."""
+    fs = sample_rate
     window = detector_window(settings.window, timing.samples_per_symbol)
     # one status per k windows (at the end of the window holding each multiple)
     status_interval = window * max(1, int(ceil(total / MAX_STATUS_POINTS / window)))
@@ -417,8 +432,6 @@ def run_receiver(rec, settings, progress=None):
     sink = _collector(fs, decimation, window, delay)
     err_sink = blocks.null_sink(gr.sizeof_float)
 
-    tb = gr.top_block("coherer_run")
-    head, chain = _source_chain(tb, rec)
     tb.connect(head, (loop, 0))
     tb.connect((loop, 0), *chain_after_loop, det, (sink, 0))
     tb.connect(head, (sink, 1))
@@ -427,8 +440,19 @@ def run_receiver(rec, settings, progress=None):
     tb.connect((loop, 3), err_sink)
     tb.connect((det, 1), (sink, 4))
     tb.connect((det, 2), (sink, 5))
+    return CarrierChain(loop, det, sink, timing, window, settings, chain_after_loop + [err_sink])
 
-    t0 = time.monotonic()
+
+def run_flowgraph(tb, sinks, totals, progress=None, overall=None):
+    """Run ``tb`` to the end, watching its collectors ``sinks`` (``totals``: the samples
+    each will see). ``progress(done, overall)`` is called about five times a second, with
+    ``done`` the least advanced collector's share of ``overall``. Raises
+    :class:`ReceiverError` if a collector failed or the flowgraph stalled."""
+    overall = totals[0] if overall is None else overall
+
+    def done():
+        return int(min(s.progress / max(1, t) for s, t in zip(sinks, totals)) * overall)
+
     finished = threading.Event()
     tb.start()
     waiter = threading.Thread(target=lambda: (tb.wait(), finished.set()), daemon=True)
@@ -437,29 +461,36 @@ def run_receiver(rec, settings, progress=None):
     stalled = False
     try:
         while not finished.wait(0.2):
-            if sink.error is not None:
+            if any(s.error is not None for s in sinks):
                 break
-            if sink.progress != last:
-                last, last_change = sink.progress, time.monotonic()
+            now = sum(s.progress for s in sinks)
+            if now != last:
+                last, last_change = now, time.monotonic()
             elif time.monotonic() - last_change > STALL_TIMEOUT_S:
                 stalled = True        # a block's thread died (an exception in work())
                 break
             if progress is not None:
-                progress(sink.progress, total)
+                progress(done(), overall)
     finally:
         if not finished.is_set():
             tb.stop()
             finished.wait()
-    if sink.error is not None:
-        raise ReceiverError(f"collector failed: {sink.error!r}")
+    for s in sinks:
+        if s.error is not None:
+            raise ReceiverError(f"collector failed: {s.error!r}")
     if stalled:
         raise ReceiverError(f"the flowgraph made no progress for {STALL_TIMEOUT_S:g} s "
-                            f"(at sample {sink.progress} of {total}); see GNU Radio's log on stderr")
-    processed = sink.progress           # every sample (the detector holds nothing back)
+                            f"(at sample {done()} of {overall}); see GNU Radio's log on stderr")
     if progress is not None:
-        progress(total, total)          # the run is complete
-    sink.finish(processed)
+        progress(overall, overall)      # the run is complete
 
+
+def chain_result(rec, chain, wall_s):
+    """The :class:`RunResult` of a chain whose flowgraph has finished (``rec``: the
+    recording, or whatever describes the stream the chain saw)."""
+    sink, det = chain.sink, chain.detector
+    processed = sink.progress           # every sample (the detector holds nothing back)
+    sink.finish(processed)
     thresholds = (_getter(det, "lock_threshold"), _getter(det, "unlock_threshold"))
     status = np.array(sink.status, dtype=float).reshape(-1, 4)
     events = sorted(sink.events, key=lambda e: (e["sample"], e["event"] != "cycle_slip"))
@@ -467,9 +498,25 @@ def run_receiver(rec, settings, progress=None):
         for e in events:
             if e["event"] == "lock":
                 e["carrier_hz"] = rec.center_freq_hz + e["freq_hz"]
-    return RunResult(rec, settings, processed, events, sink.intervals, status, sink.traces(),
-                     thresholds, loop.loop_design(), time.monotonic() - t0, sink.slips_outside_lock,
-                     timing, window)
+    return RunResult(rec, chain.settings, processed, events, sink.intervals, status, sink.traces(),
+                     thresholds, chain.loop.loop_design(), wall_s, sink.slips_outside_lock,
+                     chain.timing, chain.window)
+
+
+def run_receiver(rec, settings, progress=None):
+    """Run the receive chain over recording ``rec`` (a :class:`coherer.recording.Recording`).
+
+    ``progress(done_samples, total_samples)`` is called about five times a second
+    while the flowgraph runs. Raises ``ValueError`` for settings the blocks reject and
+    :class:`ReceiverError` if the flowgraph fails.
+    """
+    timing = symbol_timing(rec, settings)
+    tb = gr.top_block("coherer_run")
+    head, _chain = source_chain(tb, rec)
+    chain = build_chain(tb, head, rec.sample_rate, rec.num_samples, settings, timing)
+    t0 = time.monotonic()
+    run_flowgraph(tb, [chain.sink], [rec.num_samples], progress)
+    return chain_result(rec, chain, time.monotonic() - t0)
 
 
 def _getter(blk, name):
@@ -480,5 +527,6 @@ def _getter(blk, name):
         return None
 
 
-__all__ = ["ReceiverSettings", "SymbolTiming", "symbol_timing", "detector_window", "Interval", "RunResult", "ReceiverError", "run_receiver",
+__all__ = ["ReceiverSettings", "SymbolTiming", "symbol_timing", "stream_timing", "CarrierChain",
+           "build_chain", "run_flowgraph", "chain_result", "source_chain", "detector_window", "Interval", "RunResult", "ReceiverError", "run_receiver",
            "MAX_TRACE_POINTS", "MAX_STATUS_POINTS"]

@@ -22,7 +22,7 @@ import sys
 from . import errors
 
 #: sub-command modules, in the order ``--help`` lists them
-SUBCOMMANDS = ("demo", "run", "design_cmd", "bench")
+SUBCOMMANDS = ("demo", "run", "design_cmd", "bench", "worker")
 
 EXIT_OK = 0
 EXIT_INTERNAL = 1

@@ -25,6 +25,9 @@ def register(subparsers):
                    help="also run 2e8 samples through the squaring loop and report RSS growth")
     p.add_argument("--soak-samples", type=float, default=None, metavar="N",
                    help="samples of the soak run (default 2e8)")
+    p.add_argument("--carriers", action="store_true",
+                   help="instead: several carriers in one 1 Msps capture (channels of 25 ksym/s "
+                        "at 4 samples per symbol): carriers per core, and 2 worker processes vs 1")
     p.set_defaults(func=run_command)
 
 
@@ -44,6 +47,8 @@ def run_command(args):
 
     from .._warmup import COMMAND_GROUPS, prepare
     prepare(COMMAND_GROUPS["bench"])        # compile before anything is timed
+    if args.carriers:
+        return _carriers(args, progress)
     try:
         with _stdout_to_stderr() if args.json else contextlib.nullcontext():
             result = suite.run(quick=args.quick, soak=args.soak or "soak_samples" in kwargs,
@@ -54,6 +59,14 @@ def run_command(args):
         print(json.dumps(result, indent=1))
     else:
         print(suite.format_table(result))
+    return 0
+
+
+def _carriers(args, progress):
+    from ..bench import carriers
+    with _stdout_to_stderr():
+        result = carriers.run(quick=args.quick, progress=progress)
+    print(json.dumps(result, indent=1) if args.json else carriers.format_table(result))
     return 0
 
 

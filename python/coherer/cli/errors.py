@@ -24,8 +24,8 @@ SUFFIXES = {"k": 1e3, "K": 1e3, "M": 1e6, "G": 1e9}
 _NUMBER = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*([kKMGm]?)\s*(?:hz|Hz|HZ)?\s*$")
 
 #: argparse's test for "this token is a negative number, not an option", widened to
-#: exponents and suffixes so that ``--freq-guess -2.5k`` works.
-NEGATIVE_NUMBER = re.compile(r"^-(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?[kKMG]?$")
+#: exponents and suffixes so that ``--freq-guess -2.5k`` works (and ``--carrier -300k:4``).
+NEGATIVE_NUMBER = re.compile(r"^-(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?[kKMG]?(?::\d+)?$")
 
 
 def si_number(text):

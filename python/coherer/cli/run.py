@@ -75,6 +75,8 @@ def register(subparsers):
                    help="SigMF .sigmf-meta / .sigmf-data pair or .sigmf archive; or a raw file "
                         "with --sample-rate and --format")
     add_loop_options(p)
+    from . import carriers
+    carriers.add_options(p.add_argument_group("several carriers"))
     g = p.add_argument_group("raw files")
     g.add_argument("--sample-rate", type=positive_float, metavar="HZ",
                    help="sample rate of a raw file, samples/s")
@@ -272,6 +274,7 @@ def annotations(result):
 
 def main(args):
     from ..recording import RecordingError, merge_annotations
+    from ..spread import WorkerError
     from .console import clean_stdout
 
     rec = open_input(args)
@@ -290,20 +293,35 @@ def main(args):
 
     from .._warmup import COMMAND_GROUPS, prepare
     prepare(COMMAND_GROUPS["run"])          # a cold kernel cache: one note, compile now
+    if args.channel_bw is not None and not args.carrier:
+        raise UserError("--channel-bw needs --carrier")
+    from . import carriers
+    carriers.check_workers(args)
     try:
         with clean_stdout() as out:
-            result = process(rec, settings, out, args.events)
+            if args.carrier:
+                results = carriers.process(args, rec, settings, out)
+                notes = carriers.annotations_of(results, rec)
+            else:
+                result = process(rec, settings, out, args.events)
+                notes = annotations(result)
             if args.report:
                 from .. import report
-                report.write_report(result, args.report)
+                if args.carrier:
+                    carriers.write_report(results, args.report)
+                else:
+                    report.write_report(result, args.report)
                 out.write(f"report written to {args.report}\n")
             if args.annotate:
                 try:
-                    merge_annotations(rec.meta_path, annotations(result))
+                    merge_annotations(rec.meta_path, notes)
                 except RecordingError as exc:
                     raise UserError(str(exc)) from None
                 out.write(f"annotations added to {rec.meta_path}\n")
     except KeyboardInterrupt:
         print("coherer: interrupted; nothing was annotated", file=sys.stderr)
         return 130
+    except WorkerError as exc:
+        print(f"coherer: error: {exc}; nothing was annotated", file=sys.stderr)
+        return 1
     return 0

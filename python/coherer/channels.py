@@ -82,8 +82,9 @@ class ChannelPlan:
         return self.carrier_hz + self.bandwidth_hz / 2.0
 
     def to_capture(self, channel_sample):
-        """Capture sample (int) a channel sample stands for."""
-        return max(0, int(channel_sample) * self.decimation - self.delay)
+        """Capture sample a channel sample stands for (int, or an int64 array for an array)."""
+        capture = np.maximum(0, np.asarray(channel_sample, dtype=np.int64) * self.decimation - self.delay)
+        return int(capture) if capture.ndim == 0 else capture
 
     def channel_samples(self, capture_samples):
         """Channel samples produced from ``capture_samples`` capture samples."""
@@ -131,8 +132,8 @@ class _mixer(gr.sync_block):
 
 
 def translate(tb, head, plan):
-    """Add the channel of ``plan`` to ``tb``, fed from ``head``; returns its last block
-    (kept referenced by the flowgraph's owner).
+    """Add the channel of ``plan`` to ``tb``, fed from ``head``; returns its last block (the
+    low-pass) and the mixer (both kept referenced by the flowgraph's owner).
 
     The carrier is moved to zero by :class:`_mixer`, then the framework's decimating
     ``fir_filter_ccf`` low-pass filters. The framework's own oscillators would be the
@@ -260,10 +261,10 @@ def to_capture(rec, plan, res):
         intervals.append(iv)
     status = res.status.copy()
     if len(status):
-        status[:, 0] = np.maximum(0, status[:, 0] * plan.decimation - plan.delay)
+        status[:, 0] = plan.to_capture(status[:, 0])
     traces = dict(res.traces)
     if len(traces["sample"]):
-        traces["sample"] = np.maximum(0, np.asarray(traces["sample"]) * plan.decimation - plan.delay)
+        traces["sample"] = plan.to_capture(traces["sample"])
         traces["freq"] = np.asarray(traces["freq"], dtype=float) + f0
     return replace(res, recording=rec, num_samples=rec.num_samples, events=events,
                    intervals=intervals, status=status, traces=traces)

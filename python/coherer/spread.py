@@ -112,7 +112,7 @@ def run_spread(rec, settings, plans, endpoints, progress=None, processes=None):
         keep += [push, send, job_sink]
         job = {"kind": "job", "job_id": uuid.uuid4().hex, "samples": push.last_endpoint(),
                "replies": replies[here].last_endpoint(), "sample_rate": float(rec.sample_rate),
-               "num_samples": int(rec.num_samples), "settings": _settings_dict(settings),
+               "num_samples": int(rec.num_samples), "settings": wire.settings_to_dict(settings),
                "plans": [wire.plan_to_dict(plans[i]) for i in group]}
         jobs.append((ep, send, job))
     by_id = {job["job_id"]: k for k, (_, _, job) in enumerate(jobs)}
@@ -172,11 +172,6 @@ def _take(msg, by_id, heard, done, results, endpoints, now):
         results[k] = obj["results"]
     elif kind == "failed":
         raise WorkerError(f"worker {endpoints[k]} failed: {obj.get('error', 'no reason given')}")
-
-
-def _settings_dict(settings):
-    from dataclasses import asdict
-    return asdict(settings)
 
 
 __all__ = ["WorkerError", "start_local_workers", "stop_local_workers", "run_spread",

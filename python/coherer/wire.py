@@ -94,6 +94,13 @@ def plan_from_dict(d):
         raise ValueError(f"bad channel plan ({exc})") from None
 
 
+def settings_to_dict(settings):
+    """A :class:`coherer.receiver.ReceiverSettings` as a plain dict (the inverse of
+    :func:`settings_from_dict`)."""
+    from dataclasses import asdict
+    return asdict(settings)
+
+
 def settings_from_dict(d):
     from .receiver import ReceiverSettings
     try:

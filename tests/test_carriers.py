@@ -142,6 +142,45 @@ print(plan.decimation, len(plan.taps))
     assert proc.returncode == 0, proc.stderr
 
 
+def test_mixer_matches_numpy_and_ignores_where_the_stream_is_cut():
+    # reference: numpy's complex exponential of the absolute sample index in float64
+    # (x[n] e^{-j 2 pi f n / fs}); the kernel's output is complex64, so it may differ by
+    # a few float32 roundings of a unit-magnitude product (eps32 = 1.2e-7)
+    code = r"""
+import numpy as np
+from gnuradio import blocks, gr
+from gnuradio.coherer import channels
+from gnuradio.coherer._mixer_kernel import mix_down
+rng = np.random.default_rng(3)
+x = np.exp(2j * np.pi * rng.random(50_000)).astype(np.complex64)
+fs, f = 1e6, -312_345.6
+n = np.arange(len(x))
+ref = x * np.exp(-2j * np.pi * np.mod(n * (f / fs), 1.0))
+tb = gr.top_block()
+src = blocks.vector_source_c(x, False)
+mix = channels._mixer(f, fs)
+snk = blocks.vector_sink_c()
+tb.connect(src, mix, snk)
+tb.run()
+y = np.array(snk.data(), dtype=np.complex64)
+assert len(y) == len(x)
+assert np.max(np.abs(y - ref)) < 1e-6, np.max(np.abs(y - ref))
+# far into a long capture (index 1e10), cut anywhere: the same samples, bit for bit
+first = 10 ** 10 + 7
+whole = np.empty_like(x); mix_down(x, whole, first, f / fs)
+cut = np.empty_like(x)
+edges = [0, 1, 1023, 1024, 5000, 31_111, len(x)]
+for a, b in zip(edges, edges[1:]):
+    mix_down(x[a:b], cut[a:b], first + a, f / fs)
+assert np.array_equal(whole, cut)
+m = first + n
+far = x * np.exp(-2j * np.pi * np.mod(m * (f / fs), 1.0))
+assert np.max(np.abs(whole - far)) < 1e-5, np.max(np.abs(whole - far))
+"""
+    proc = python(code)
+    assert proc.returncode == 0, proc.stderr
+
+
 def test_channel_filter_passes_the_band_and_stops_outside():
     # response of the designed taps from numpy's DFT: flat within the occupied band,
     # and well down beyond twice the half-band (the window designer's Blackman-Harris

@@ -169,3 +169,49 @@ def test_worker_with_a_malformed_endpoint_is_exit_2():
     proc = coherer("worker", "--listen", "udp://nowhere")
     assert proc.returncode == 2
     assert "--listen must be tcp://HOST:PORT" in one_error_line(proc)
+
+
+@pytest.mark.parametrize("cpus, words", [("4096", "this host lets it use CPUs"),
+                                         ("0,x", "CPU numbers separated by commas")])
+def test_worker_with_bad_cpus_is_exit_2(cpus, words):
+    proc = coherer("worker", "--listen", f"tcp://127.0.0.1:{free_port()}", "--cpus", cpus)
+    assert proc.returncode == 2
+    assert words in one_error_line(proc)
+
+
+def test_local_workers_each_get_a_cpu_of_their_own():
+    import os
+
+    from gnuradio.coherer.spread import start_local_workers, stop_local_workers
+    allowed = sorted(os.sched_getaffinity(0))
+    local = start_local_workers(len(allowed) + 1)
+    try:
+        deadline = time.monotonic() + 30
+        want = [{allowed[i % len(allowed)]} for i in range(len(local))]
+        while [os.sched_getaffinity(p.pid) for _, p in local] != want and time.monotonic() < deadline:
+            time.sleep(0.2)
+        assert [os.sched_getaffinity(p.pid) for _, p in local] == want
+    finally:
+        stop_local_workers(local)
+
+
+def test_wire_byte_vectors_match_the_frameworks_own_conversion():
+    # Reference: the framework's own pmt conversions (pmt.to_pmt of a numpy uint8 array,
+    # pmt.u8vector_elements); the wire builds and reads the same values without a
+    # Python int per byte.
+    import zlib
+
+    import pmt
+
+    from gnuradio.coherer import wire
+    rng = np.random.default_rng(5)
+    for n in (0, 1, 7, 4096, 100_003):
+        raw = rng.integers(0, 256, n).astype(np.uint8).tobytes()
+        reference = pmt.to_pmt(np.frombuffer(raw, dtype=np.uint8)) if n else pmt.init_u8vector(0, [])
+        assert pmt.equal(wire._to_u8vector(raw), reference)
+        assert wire._from_u8vector(reference) == bytes(pmt.u8vector_elements(reference))
+    obj = {"kind": "alive", "job_id": "x" * 32, "progress": 12345, "values": [0.5, float("inf")]}
+    sent = wire.encode(obj)
+    assert json.loads(zlib.decompress(bytes(pmt.u8vector_elements(sent)))) == obj
+    framework_made = pmt.to_pmt(np.frombuffer(zlib.compress(json.dumps(obj).encode()), dtype=np.uint8))
+    assert wire.decode(framework_made) == obj

@@ -31,7 +31,7 @@ import time
 #: The kernels each group of blocks calls from Python, as (module, function). A group is
 #: cold when any of them has no cache entry for this source and this CPU.
 GROUPS = {
-    "loop": (("_loop_kernel", "mth_power_loop"),),
+    "loop": (("_loop_kernel", "mth_power_loop"), ("_mixer_kernel", "mix_down")),   # + channel mixer
     "lock": (("lockstat", "window_sums"), ("lockstat", "decide_windows")),
     "feedforward": (("_feedforward_kernel", "feedforward"),),
 }
@@ -123,6 +123,8 @@ def warm_group(group):
     if group == "loop":
         _run_block(pkg.mth_power_loop_cc(1e4, 2, 20.0, tag_interval=1000, diagnostics=True), x, 4)
         _run_block(pkg.mth_power_loop_cc(1e4, 4, 20.0), x, 1)
+        from .channels import _mixer
+        _run_block(_mixer(1e3, 1e4), x, 1)
     elif group == "lock":
         _run_block(pkg.lock_detector_cc(1e4, 2, 1024, status_interval=2048), x, 1)
     elif group == "feedforward":

@@ -30,6 +30,7 @@ from gnuradio import gr
 
 from . import receiver
 from ._long_calls import request_long_calls
+from ._mixer_kernel import mix_down
 
 #: Fewest samples per symbol a channel runs at.
 CHANNEL_SPS = 4
@@ -116,7 +117,8 @@ def decimation_for(sample_rate, bandwidth_hz, symbol_rate_hz=None, oversample=CH
 
 class _mixer(gr.sync_block):
     """x[n] e^{-j 2 pi f n / fs}, the phase taken from the absolute sample index n, so
-    every sample gets the same value however the stream is cut (vectorised, no state)."""
+    every sample gets the same value however the stream is cut
+    (:func:`coherer._mixer_kernel.mix_down`, no state)."""
 
     def __init__(self, freq_hz, sample_rate):
         gr.sync_block.__init__(self, name="coherer_mixer", in_sig=[np.complex64], out_sig=[np.complex64])
@@ -125,9 +127,7 @@ class _mixer(gr.sync_block):
 
     def work(self, input_items, output_items):
         x = input_items[0][self._skip:]           # the history is there only for the buffer size
-        n = self.nitems_read(0) + np.arange(len(x), dtype=np.int64)
-        frac = np.mod(n * self._cycles_per_sample, 1.0)
-        output_items[0][:] = x * np.exp(-2j * np.pi * frac).astype(np.complex64)
+        mix_down(x, output_items[0], self.nitems_read(0), self._cycles_per_sample)
         return len(x)
 
 

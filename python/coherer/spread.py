@@ -49,11 +49,15 @@ def free_port(host="127.0.0.1"):
 
 
 def start_local_workers(count):
-    """``count`` ``coherer worker`` processes on loopback; returns [(endpoint, Popen)]."""
+    """``count`` ``coherer worker`` processes on loopback, worker i on the i-th CPU this
+    process may use (round robin), so that each is one CPU's worth of work whatever
+    threads its flowgraph starts; returns [(endpoint, Popen)]."""
+    cpus = sorted(os.sched_getaffinity(0))
     out = []
-    for _ in range(count):
+    for i in range(count):
         ep = f"tcp://127.0.0.1:{free_port()}"
-        proc = subprocess.Popen([sys.executable, "-m", "gnuradio.coherer", "worker", "--listen", ep],
+        proc = subprocess.Popen([sys.executable, "-m", "gnuradio.coherer", "worker", "--listen", ep,
+                                 "--cpus", str(cpus[i % len(cpus)])],
                                 stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
                                 stderr=subprocess.DEVNULL, env=dict(os.environ))
         out.append((ep, proc))

@@ -16,6 +16,7 @@ malformed frame and carry on.
 
 import base64
 import json
+import struct
 import zlib
 from dataclasses import asdict
 
@@ -29,10 +30,27 @@ JOB_FIELDS = {"samples": str, "replies": str, "job_id": str, "sample_rate": floa
               "num_samples": int, "settings": dict, "plans": list}
 
 
+#: The framework's serialised form of a u8vector of n bytes is this prefix, n as a
+#: big-endian uint32, one pad-count byte (1), one pad byte, then the bytes.
+_U8VECTOR_PREFIX = b"\x0a\x00"
+_U8VECTOR_PAD = b"\x01\x00"
+
+
+def _to_u8vector(raw):
+    """``raw`` (bytes) as a pmt u8vector, built by the framework's deserialiser: the same
+    value as ``pmt.to_pmt`` of the byte array, without a Python int per byte."""
+    return pmt.deserialize_str(_U8VECTOR_PREFIX + struct.pack(">I", len(raw)) + _U8VECTOR_PAD + raw)
+
+
+def _from_u8vector(msg):
+    """The bytes of a pmt u8vector (the tail of its serialised form)."""
+    n = pmt.length(msg)
+    return pmt.serialize_str(msg)[-n:] if n else b""
+
+
 def encode(obj):
     """A JSON-able dict as the pmt blob sent over the wire."""
-    raw = zlib.compress(json.dumps(obj, allow_nan=True).encode(), 1)
-    return pmt.to_pmt(np.frombuffer(raw, dtype=np.uint8))
+    return _to_u8vector(zlib.compress(json.dumps(obj, allow_nan=True).encode(), 1))
 
 
 def decode(msg):
@@ -40,7 +58,7 @@ def decode(msg):
     try:
         if not pmt.is_u8vector(msg):
             raise ValueError("not a byte vector")
-        raw = bytes(np.asarray(pmt.u8vector_elements(msg), dtype=np.uint8))
+        raw = _from_u8vector(msg)
         d = zlib.decompressobj()
         text = d.decompress(raw, MAX_MESSAGE_BYTES)
         if d.unconsumed_tail:

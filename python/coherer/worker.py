@@ -73,6 +73,11 @@ class Replies:
         self.box.send(obj)
 
     def close(self):
+        """Stop after ``REPLY_LINGER_S`` (for the last reply to leave), from a thread of
+        its own, so the worker can take its next job meanwhile."""
+        threading.Thread(target=self._linger_and_stop, daemon=True).start()
+
+    def _linger_and_stop(self):
         time.sleep(REPLY_LINGER_S)
         self.tb.stop()
         self.tb.wait()

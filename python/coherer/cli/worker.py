@@ -2,6 +2,7 @@
 """``coherer worker --listen ENDPOINT``: run carrier chains for ``coherer run`` on
 another host (or process), reached over ZeroMQ (see :mod:`coherer.worker`)."""
 
+import os
 import re
 
 from . import UserError
@@ -18,6 +19,18 @@ def check_endpoint(text, option):
     return text
 
 
+def check_cpus(text, option="--cpus"):
+    """``text`` ("0" or "0,2") as a set of CPU numbers this process may run on, or UserError."""
+    allowed = os.sched_getaffinity(0)
+    try:
+        cpus = {int(part) for part in str(text).split(",")}
+    except ValueError:
+        raise UserError(f"{option} must be CPU numbers separated by commas, got {text!r}") from None
+    if not cpus <= allowed:
+        raise UserError(f"{option} {text}: this host lets it use CPUs {','.join(map(str, sorted(allowed)))}")
+    return cpus
+
+
 def register(subparsers):
     p = subparsers.add_parser(
         "worker", help="serve carrier chains for 'coherer run --worker' over ZeroMQ",
@@ -28,6 +41,9 @@ def register(subparsers):
                "coherer run CAPTURE --carrier ... --worker tcp://thathost:5710 here.")
     p.add_argument("--listen", required=True, metavar="ENDPOINT",
                    help="the endpoint to bind, tcp://HOST:PORT")
+    p.add_argument("--cpus", metavar="LIST",
+                   help="run only on these CPUs, e.g. 0 or 0,2 (default: all this process may use); "
+                        "'coherer run --workers N' gives each of its workers one CPU of its own")
     p.set_defaults(func=main)
     return p
 
@@ -36,6 +52,8 @@ def main(args):
     from .._warmup import COMMAND_GROUPS, prepare
     from ..worker import serve
     endpoint = check_endpoint(args.listen, "--listen")
+    if args.cpus is not None:
+        os.sched_setaffinity(0, check_cpus(args.cpus))     # every thread started later inherits it
     prepare(COMMAND_GROUPS["run"])          # a cold kernel cache: compile before the first job
     try:
         serve(endpoint)

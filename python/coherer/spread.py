@@ -35,7 +35,7 @@ WORKER_SILENCE_S = 5.0
 #: Time (s) a worker has to send its first reply (process start, kernel warm-up).
 WORKER_START_S = 20.0
 #: Seconds between checks of the replies and the local worker processes.
-POLL_S = 0.1
+POLL_S = 0.02
 
 
 class WorkerError(RuntimeError):

@@ -28,6 +28,8 @@ ALIVE_INTERVAL_S = 0.5
 JOB_STALL_S = 30.0
 #: ZeroMQ high-water mark (messages) of the sample stream: a full queue blocks the sender.
 STREAM_HWM = 64
+#: Seconds between checks of a running job (its collectors, a stall, the end).
+WATCH_S = 0.02
 #: Seconds a reply socket is kept open after the last reply, for it to leave.
 REPLY_LINGER_S = 1.0
 
@@ -114,7 +116,7 @@ def run_job(job, log=sys.stderr):
     last, last_change = -1, time.monotonic()
     error = None
     try:
-        while not finished.wait(ALIVE_INTERVAL_S / 5):
+        while not finished.wait(WATCH_S):
             done = alive.progress()
             if done != last:
                 last, last_change = done, time.monotonic()

@@ -36,7 +36,7 @@ def int_in(lo, hi):
 
 def add_loop_options(p, power_required=True, noise_bw_default=None):
     """Loop and detector options shared by ``run`` and ``demo``."""
-    from ..design import MAX_BT, MAX_DAMPING, MAX_POWER
+    from ..arguments import MAX_BT, MAX_DAMPING, MAX_POWER
     from ..lock_detector_cc import MAX_WINDOW, MIN_WINDOW
 
     g = p.add_argument_group("carrier loop and lock detector")

@@ -14,6 +14,8 @@ MAX_BT = 0.1
 MAX_DAMPING = 10.0
 #: Largest accepted symmetry order M.
 MAX_POWER = 16
+#: Loop orders the loops implement.
+LOOP_ORDERS = (1, 2, 3)
 
 #: Signal placements of the pulse-shape model (see :func:`coherer.design.detector_noise`).
 PLACEMENT_CHANNEL = "channel"
@@ -40,7 +42,7 @@ def validate_spec(sample_rate, power, noise_bw_hz, damping, loop_order):
             f"noise_bw_hz must be at most {MAX_BT} * sample_rate = {MAX_BT * sample_rate:g} Hz, got {noise_bw_hz!r}")
     if not np.isfinite(damping) or not 0 < damping <= MAX_DAMPING:
         raise ValueError(f"damping must be in (0, {MAX_DAMPING}], got {damping!r}")
-    if loop_order not in (1, 2, 3) or int(loop_order) != loop_order:
+    if loop_order not in LOOP_ORDERS or int(loop_order) != loop_order:
         raise ValueError(f"loop_order must be 1, 2 or 3, got {loop_order!r}")
 
 

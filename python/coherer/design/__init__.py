@@ -58,15 +58,17 @@ Predictions and their sources ("from memory" where the text was not at hand):
 """
 
 from ..arguments import (
-    MAX_BT, MAX_DAMPING, MAX_POWER, validate_spec, PLACEMENT_CHANNEL, PLACEMENT_MATCHED, PLACEMENTS,
+    MAX_BT, MAX_DAMPING, MAX_POWER, LOOP_ORDERS, validate_spec, PLACEMENT_CHANNEL, PLACEMENT_MATCHED,
+    PLACEMENTS,
     MAX_SAMPLES_PER_SYMBOL, MAX_MODULATION_INDEX, validate_signal)
 from ._gains import (
     KAPLAN_A2, KAPLAN_A3, KAPLAN_B3, noise_bw_per_wn, natural_frequency, third_order_bw_per_w0,
     third_order_coefficients, bilinear_second_order, first_order_gain, rectangular_third_order,
-    textbook_gains)
+    textbook_gains, KERNEL_SLOTS, LoopFormulas, LOOP_FORMULAS, loop_formulas, loop_gains, gain_vector,
+    padded_gains)
 from ._bandwidth import (
     closed_loop, closed_loop_poles, loop_state_matrices, noise_bandwidth_bt, impulse_response,
-    solve_small)
+    solve_small, steady_phase_error, steady_rate_limit)
 from ._loop import (
     LoopDesign, design_loop)
 from ._detector import (
@@ -96,6 +98,8 @@ __all__ = [
     "MAX_BT", "MAX_DAMPING", "MAX_POWER", "KAPLAN_A2", "KAPLAN_A3", "KAPLAN_B3", "noise_bw_per_wn",
     "natural_frequency", "third_order_bw_per_w0", "third_order_coefficients",
     "bilinear_second_order", "first_order_gain", "rectangular_third_order", "textbook_gains",
+    "LOOP_ORDERS", "KERNEL_SLOTS", "LoopFormulas", "LOOP_FORMULAS", "loop_formulas", "loop_gains",
+    "gain_vector", "padded_gains", "steady_phase_error", "steady_rate_limit",
     "closed_loop", "closed_loop_poles", "loop_state_matrices", "noise_bandwidth_bt",
     "impulse_response", "LoopDesign", "validate_spec", "design_loop", "mth_power_noise",
     "squaring_loss", "phase_error_variance", "db_to_linear", "continuous_ramp_phase_error",

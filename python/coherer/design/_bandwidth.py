@@ -1,28 +1,30 @@
 # SPDX-License-Identifier: GPL-3.0-or-later
-"""Closed loop of given loop-gain products: transfer function, poles, delta-form state
-matrices and the exact noise bandwidth B_L T (dimensionless: B_L in Hz times T in s)."""
+"""The closed loop of a gain vector ``(gK1, ..., gK_d)`` of any order d: transfer function,
+poles, delta-form state matrices, the exact noise bandwidth B_L T (dimensionless: B_L in Hz
+times T in s) and the steady phase errors (rad) of polynomial inputs."""
 
-from math import inf
+from math import inf, pi
 
 import numpy as np
 from scipy import signal
 
+from ._gains import gain_vector
 
-# --- closed-loop analysis ---------------------------------------------------------------
 
 def closed_loop(g_gains):
     """Closed-loop ``H(z) = theta^/theta`` as ``(b, a)`` in ascending powers of z^-1.
 
-    ``g_gains`` are the loop-gain products ``(gK1, gK2, gK3)``; the loop order is
-    the number of leading non-zero entries. With ``u = 1 - z^-1`` and order d:
+    ``g_gains`` is the gain vector ``(gK1, ..., gK_d)`` (trailing zero slots are dropped, see
+    :func:`gain_vector`); d is the loop order. With ``u = 1 - z^-1``:
     ``H = z^-1 N(u) / (u^d + z^-1 N(u))``, ``N(u) = sum_i gK_i u^(d-i)``.
     """
     P = np.polynomial.polynomial
-    order = 3 if g_gains[2] else (2 if g_gains[1] else 1)
+    g = gain_vector(g_gains)
+    order = len(g)
     u = np.array([1.0, -1.0])
     n_u = np.zeros(1)
     for i in range(order):
-        n_u = P.polyadd(n_u, g_gains[i] * P.polypow(u, order - 1 - i))
+        n_u = P.polyadd(n_u, g[i] * P.polypow(u, order - 1 - i))
     num = P.polymul([0.0, 1.0], n_u)
     den = P.polyadd(P.polypow(u, order), num)
     n = max(len(num), len(den))
@@ -30,7 +32,7 @@ def closed_loop(g_gains):
 
 
 def closed_loop_poles(g_gains):
-    """Closed-loop poles (z-plane) of the loop with gain products ``g_gains``.
+    """Closed-loop poles (z-plane) of the loop with gain vector ``g_gains``.
 
     Computed as ``1 + eig(Delta)`` of the delta-form model, which stays accurate
     when the poles crowd around z = 1 (narrow loops).
@@ -42,19 +44,44 @@ def closed_loop_poles(g_gains):
 def loop_state_matrices(g_gains):
     """Phase-domain state-space model of the linearised loop in delta form.
 
-    State ``x = [theta^, acc1, acc2]`` (truncated to the loop order), input the
-    carrier phase theta: ``x[n+1] = x[n] + Delta x[n] + B theta[n]``, output ``theta^``.
+    State ``x = [theta^, acc1, ..., acc_(d-1)]`` (NCO phase and the filter's integrators),
+    input the carrier phase theta: ``x[n+1] = x[n] + Delta x[n] + B theta[n]``, output
+    ``theta^``. Integrator i collects ``gK_(i+1) + ... + gK_d`` times the error and feeds every
+    later state: ``B_i = -Delta[i, 0] = sum_(j >= i) gK_(j+1)``, ``Delta[i, k] = 1`` for k > i.
     Returns ``(Delta, B)``. The delta form keeps the Lyapunov solution accurate for
     very narrow loops, where ``A = I + Delta`` has eigenvalues close to 1.
     """
-    gk1, gk2, gk3 = g_gains
-    order = 3 if gk3 else (2 if gk2 else 1)
-    g_all = gk1 + gk2 + gk3
-    delta = np.array([[-g_all, 1.0, 1.0],
-                      [-(gk2 + gk3), 0.0, 1.0],
-                      [-gk3, 0.0, 0.0]])
-    b = np.array([g_all, gk2 + gk3, gk3])
-    return delta[:order, :order], b[:order]
+    g = gain_vector(g_gains)
+    order = len(g)
+    tail = np.array([sum(g[i:]) for i in range(order)])
+    delta = np.triu(np.ones((order, order)), 1)
+    delta[:, 0] = -tail
+    return delta, tail
+
+
+def steady_phase_error(g_gains, sample_rate, degree, rate):
+    """Final phase error (rad) for a carrier phase polynomial of ``degree`` (1 a frequency step
+    of ``rate`` Hz, 2 a ramp of ``rate`` Hz/s, 3 an acceleration of ``rate`` Hz/s^2).
+
+    A loop of order d has d integrators (the NCO and d - 1 in its filter): no error below
+    degree d, the exact discrete final value ``2 pi rate / fs^d / gK_d`` at degree d
+    (REFERENCES 2.1), unbounded above it.
+    """
+    if rate == 0.0:
+        return 0.0
+    g = gain_vector(g_gains)
+    if degree != len(g):
+        return 0.0 if degree < len(g) else inf
+    return 2.0 * pi * rate / sample_rate ** degree / g[-1]
+
+
+def steady_rate_limit(g_gains, sample_rate, degree, max_error_rad):
+    """Largest ``rate`` (Hz/s^(degree-1)) whose :func:`steady_phase_error` stays within
+    ``max_error_rad``: ``inf`` below the loop order, 0 above it."""
+    g = gain_vector(g_gains)
+    if degree != len(g):
+        return inf if degree < len(g) else 0.0
+    return max_error_rad * g[-1] * sample_rate ** degree / (2.0 * pi)
 
 
 def noise_bandwidth_bt(g_gains):

@@ -2,10 +2,15 @@
 """Loop-filter gains of each loop order for a requested B_L T and damping.
 
 Gains are loop-gain products ``g K_i`` (g = detector gain M times NCO gain 1), dimensionless
-per sample; bandwidths B_L in Hz, natural frequencies in rad/s.
+per sample; bandwidths B_L in Hz, natural frequencies in rad/s. A loop filter is the gain vector
+``(gK1, ..., gK_d)`` (proportional, integral, double integral), its length d the loop order;
+:data:`LOOP_FORMULAS` holds the one place where the published formulas differ by order.
 """
 
+from collections import namedtuple
 
+#: Gain slots of the signal kernel (gK1, gK2, gK3): loop filters are padded with zeros to this.
+KERNEL_SLOTS = 3
 
 # Kaplan & Hegarty, Understanding GPS 2nd ed., Table 5.6 constants (see REFERENCES 1.3).
 KAPLAN_A2 = 1.414
@@ -62,12 +67,66 @@ def rectangular_third_order(bt, damping, a3=None, b3=None):
     return b3 * w0t, a3 * w0t * w0t, w0t ** 3
 
 
+def _first_order_gains(bt, damping):
+    """``(g K1,)`` of the first-order loop; it has no damping."""
+    return (first_order_gain(bt),)
+
+
+def _first_order_corner(noise_bw_hz, design_bw_hz, damping):
+    """Closed-loop corner ``4 B_L`` (rad/s) of the first-order loop at the requested B_L (Hz)."""
+    return 4.0 * noise_bw_hz
+
+
+def _second_order_corner(noise_bw_hz, design_bw_hz, damping):
+    """Natural frequency wn (rad/s) at the design bandwidth (Hz)."""
+    return natural_frequency(design_bw_hz, damping)
+
+
+def _third_order_corner(noise_bw_hz, design_bw_hz, damping):
+    """w0 (rad/s) of the 3rd-order filter at the design bandwidth (Hz)."""
+    a3, b3 = third_order_coefficients(damping)
+    return design_bw_hz / third_order_bw_per_w0(a3, b3)
+
+
+#: What differs by loop order: ``gains(bt, damping)``, the gain vector for a design B_L T, and
+#: ``corner(noise_bw_hz, design_bw_hz, damping)``, the loop's characteristic frequency in rad/s.
+LoopFormulas = namedtuple("LoopFormulas", "gains corner")
+LOOP_FORMULAS = {
+    1: LoopFormulas(_first_order_gains, _first_order_corner),
+    2: LoopFormulas(bilinear_second_order, _second_order_corner),
+    3: LoopFormulas(rectangular_third_order, _third_order_corner),
+}
+
+
+def loop_formulas(loop_order):
+    """The :data:`LOOP_FORMULAS` entry of ``loop_order``; ``ValueError`` for any other order."""
+    try:
+        return LOOP_FORMULAS[loop_order]
+    except (KeyError, TypeError):
+        raise ValueError(f"loop_order must be 1, 2 or 3, got {loop_order!r}") from None
+
+
+def loop_gains(loop_order, bt, damping):
+    """Gain vector ``(gK1, ..., gK_d)`` of order d = ``loop_order`` from its published mapping
+    for B_L T = ``bt`` (dimensionless) and damping factor ``damping``."""
+    return tuple(loop_formulas(loop_order).gains(bt, damping))
+
+
+def gain_vector(g_gains):
+    """``g_gains`` without trailing zero slots: the loop filter, its length the loop order."""
+    g = tuple(g_gains)
+    order = len(g)
+    while order > 1 and not g[order - 1]:
+        order -= 1
+    return g[:order]
+
+
+def padded_gains(g_gains):
+    """The loop filter padded with zeros to the kernel's :data:`KERNEL_SLOTS` slots."""
+    g = tuple(g_gains)
+    return g + (0.0,) * (KERNEL_SLOTS - len(g))
+
+
 def textbook_gains(loop_order, bt, damping):
-    """Loop-gain products ``(gK1, gK2, gK3)`` from the textbook mapping of the given order."""
-    if loop_order == 1:
-        return first_order_gain(bt), 0.0, 0.0
-    if loop_order == 2:
-        return (*bilinear_second_order(bt, damping), 0.0)
-    if loop_order == 3:
-        return rectangular_third_order(bt, damping)
-    raise ValueError(f"loop_order must be 1, 2 or 3, got {loop_order!r}")
+    """Loop-gain products ``(gK1, gK2, gK3)`` (the kernel's slots) of :func:`loop_gains`."""
+    return padded_gains(loop_gains(loop_order, bt, damping))

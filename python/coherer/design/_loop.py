@@ -3,22 +3,20 @@
 samples/s, bandwidths in Hz, gains per unit detector gain)."""
 
 from dataclasses import dataclass
-from math import inf, pi
 
 import numpy as np
 from scipy import optimize
 
 from ..arguments import validate_spec
-from ._bandwidth import noise_bandwidth_bt
-from ._gains import natural_frequency, textbook_gains, third_order_bw_per_w0, third_order_coefficients
+from ._bandwidth import noise_bandwidth_bt, steady_phase_error
+from ._gains import loop_formulas, loop_gains, padded_gains
 
-
-# --- the design used by the blocks -----------------------------------------------------
 
 @dataclass(frozen=True)
 class LoopDesign:
-    """A complete loop design. Gains ``k1, k2, k3`` are per unit detector gain
-    (the kernel multiplies the normalised detector output, mean ``sin(M phi)``, by them)."""
+    """A complete loop design. ``g_gains`` is the loop filter as a gain vector, its length the
+    loop order; ``k1, k2, k3`` are the kernel's three gain slots per unit detector gain (the kernel
+    multiplies the normalised detector output, mean ``sin(M phi)``, by them; 0 beyond the order)."""
     sample_rate: float     #: samples/s
     power: int             #: symmetry order M
     noise_bw_hz: float     #: requested one-sided loop noise bandwidth B_L, Hz
@@ -26,7 +24,7 @@ class LoopDesign:
     loop_order: int        #: 1, 2 or 3
     design_bt: float       #: B_L T fed to the textbook mapping
     actual_bt: float       #: exact noise bandwidth of the discrete loop, B_L T
-    g_gains: tuple         #: (gK1, gK2, gK3), loop-gain products with g = M
+    g_gains: tuple         #: (gK1, ..., gK_order), loop-gain products with g = M
     k1: float
     k2: float
     k3: float
@@ -38,13 +36,10 @@ class LoopDesign:
 
     @property
     def natural_frequency(self):
-        """Natural frequency wn (rad/s) of the continuous equivalent (2nd order), or w0 (3rd order)."""
-        if self.loop_order == 3:
-            a3, b3 = third_order_coefficients(self.damping)
-            return self.design_bt * self.sample_rate / third_order_bw_per_w0(a3, b3)
-        if self.loop_order == 1:
-            return 4.0 * self.noise_bw_hz   # first-order loop: closed-loop corner, rad/s
-        return natural_frequency(self.design_bt * self.sample_rate, self.damping)
+        """Natural frequency wn (rad/s) of the continuous equivalent (2nd order), w0 (3rd order),
+        or the closed-loop corner 4 B_L (1st order)."""
+        corner = loop_formulas(self.loop_order).corner
+        return corner(self.noise_bw_hz, self.design_bt * self.sample_rate, self.damping)
 
     def ramp_phase_error(self, rate_hz_per_s):
         """Steady-state phase error (rad, carrier-phase units) to a frequency ramp in Hz/s.
@@ -52,21 +47,11 @@ class LoopDesign:
         Exact discrete final value ``alpha / (g K2)`` with ``alpha = 2 pi rate / fs^2``
         rad/sample^2 (REFERENCES 2.1); 0 for a 3rd-order loop; unbounded for order 1.
         """
-        if rate_hz_per_s == 0.0:
-            return 0.0
-        if self.loop_order == 1:
-            return inf
-        if self.loop_order == 3:
-            return 0.0
-        alpha = 2.0 * pi * rate_hz_per_s / self.sample_rate ** 2
-        return alpha / self.g_gains[1]
+        return steady_phase_error(self.g_gains, self.sample_rate, 2, rate_hz_per_s)
 
     def frequency_step_error(self, step_hz):
         """Steady-state phase error (rad) after a frequency step (Hz): ``dw / (g K1)`` for order 1, else 0."""
-        if self.loop_order != 1 or step_hz == 0.0:
-            return 0.0
-        return 2.0 * pi * step_hz / self.sample_rate / self.g_gains[0]
-
+        return steady_phase_error(self.g_gains, self.sample_rate, 1, step_hz)
 
 
 def design_loop(sample_rate, power, noise_bw_hz, damping=0.707, loop_order=2, exact=True):
@@ -87,16 +72,16 @@ def design_loop(sample_rate, power, noise_bw_hz, damping=0.707, loop_order=2, ex
     design_bt = target
     if exact:
         def excess(bt):
-            return noise_bandwidth_bt(textbook_gains(loop_order, bt, damping)) / target - 1.0
+            return noise_bandwidth_bt(loop_gains(loop_order, bt, damping)) / target - 1.0
         lo = 0.25 * target
         hi = target
         while excess(hi) < 0.0:          # the mapping can also land low (order 1 never does)
             hi *= 1.25
         design_bt = optimize.brentq(excess, lo, hi, xtol=1e-15 * target, rtol=1e-13)
-    g_gains = textbook_gains(loop_order, design_bt, damping)
+    g_gains = loop_gains(loop_order, design_bt, damping)
     actual = noise_bandwidth_bt(g_gains)
     if not np.isfinite(actual):
         raise ValueError(f"noise_bw_hz={noise_bw_hz!r} gives an unstable discrete loop at this sample rate")
-    k1, k2, k3 = (gk / power for gk in g_gains)
+    k1, k2, k3 = (gk / power for gk in padded_gains(g_gains))
     return LoopDesign(float(sample_rate), power, float(noise_bw_hz), float(damping), loop_order,
-                      design_bt, actual, tuple(g_gains), k1, k2, k3)
+                      design_bt, actual, g_gains, k1, k2, k3)

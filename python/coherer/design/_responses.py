@@ -8,7 +8,8 @@ from math import pi
 import numpy as np
 from scipy import optimize
 
-from ._bandwidth import closed_loop_poles
+from ._bandwidth import closed_loop_poles, loop_state_matrices
+from ._gains import gain_vector
 
 
 # --- transient responses of the discrete loop ---------------------------------------------------
@@ -83,15 +84,14 @@ class StepResponses:
 
 
 def _error_state_matrix(g_gains):
-    """``D`` with ``z[n+1] = (I + D) z[n] + [f, 0, 0]`` for the linearised loop in the kernel's order,
-    ``z = [phi, acc1, acc2]`` (truncated to the loop order), ``f`` the input phase increment per sample."""
-    gk1, gk2, gk3 = g_gains
-    order = 3 if gk3 else (2 if gk2 else 1)
-    g_all = gk1 + gk2 + gk3
-    d = np.array([[-g_all, -1.0, -1.0],
-                  [gk2 + gk3, 0.0, 1.0],
-                  [gk3, 0.0, 0.0]])
-    return d[:order, :order]
+    """``D`` with ``z[n+1] = (I + D) z[n] + [f, 0, ..., 0]`` for the linearised loop in the kernel's
+    order, ``z = [phi, acc1, ..., acc_(d-1)]``, ``f`` the input phase increment per sample: the
+    delta-form matrix of :func:`loop_state_matrices` with the phase state's sign flipped
+    (``phi = theta - theta^``)."""
+    d, _ = loop_state_matrices(g_gains)
+    d[0, 1:] = -d[0, 1:]
+    d[1:, 0] = -d[1:, 0]
+    return d
 
 
 def _delta_power(d, n):
@@ -150,11 +150,10 @@ def step_responses(design, n_samples=None, max_points=RESPONSE_POINTS):
     f = 2.0 * pi / fs                          # 1 Hz frequency step, rad/sample
     phase_start = np.zeros(order)              # phase step: z0 = [1, 0, 0] decays to 0
     phase_start[0] = 1.0
-    fixed = np.zeros(order)                    # frequency step from z = 0 to the fixed point:
-    if order == 1:                             # phi = f / gK1 (order 1), else phi = 0, acc1 = f
-        fixed[0] = f / design.g_gains[0]
-    else:
-        fixed[1] = f
+    final_error = design.frequency_step_error(1.0)
+    fixed = np.zeros(order)                    # frequency step from z = 0 to the fixed point: the
+    fixed[0] = final_error                     # first integrator holds f (phi = 0); without one
+    fixed[1:2] = f                             # (order 1) the phase error does, phi = f / gK1
     index, phase_rows, freq_rows = [], [], []
     for stride, points in _response_grid(n, design.actual_bt, max_points):
         d_step = _delta_power(d, stride)
@@ -168,7 +167,6 @@ def step_responses(design, n_samples=None, max_points=RESPONSE_POINTS):
     phase = 1.0 - phase_state[:, 0]                                  # theta^ per unit phase step
     error = freq_state[:, 0]                                         # phi, rad per Hz of step
     nco = (sum(design.g_gains) * error + freq_state[:, 1:].sum(axis=1)) / f   # NCO step v[n] per unit step
-    final_error = design.frequency_step_error(1.0)
     i_peak = int(np.argmax(np.abs(error)))
     peak = float(abs(error[i_peak]))
     return StepResponses(
@@ -187,8 +185,9 @@ def closed_loop_magnitude_db(design, freqs_hz):
     w = 2.0 * pi * np.asarray(freqs_hz, dtype=float) / design.sample_rate
     z_inv = np.exp(-1j * w)
     u = 2j * np.sin(w / 2.0) * np.exp(-0.5j * w)
-    order = design.loop_order
-    n_u = sum(design.g_gains[i] * u ** (order - 1 - i) for i in range(order))
+    g = gain_vector(design.g_gains)
+    order = len(g)
+    n_u = sum(g[i] * u ** (order - 1 - i) for i in range(order))
     h = z_inv * n_u / (u ** order + z_inv * n_u)
     return 20.0 * np.log10(np.maximum(np.abs(h), 1e-300))
 

@@ -2,12 +2,13 @@
 """Steady tracking errors (rad) for frequency ramps (Hz/s) and accelerations (Hz/s^2), and
 the 2nd-order bandwidth (Hz) that balances ramp error against jitter."""
 
-from math import inf, pi
+from math import pi
 
 import numpy as np
 from scipy import optimize
 
 from ..arguments import MAX_BT, validate_spec
+from ._bandwidth import steady_phase_error, steady_rate_limit
 from ._detector import _is_unshaped, detector_noise_density, mth_power_noise
 from ._gains import natural_frequency, noise_bw_per_wn
 from ._loop import design_loop
@@ -23,12 +24,8 @@ def continuous_ramp_phase_error(noise_bw_hz, damping, rate_hz_per_s):
 def max_trackable_ramp_hz_per_s(design):
     """Largest frequency ramp (Hz/s) for which the M-domain steady error stays within pi/2
     (the sine S-curve's usable range; REFERENCES 2.1). Unbounded for order 3, 0 for order 1."""
-    if design.loop_order == 3:
-        return inf
-    if design.loop_order == 1:
-        return 0.0
     phi_max = (pi / 2.0) / design.power
-    return phi_max * design.g_gains[1] * design.sample_rate ** 2 / (2.0 * pi)
+    return steady_rate_limit(design.g_gains, design.sample_rate, 2, phi_max)
 
 
 # --- tracking and bandwidth choice -----------------------------------------------------------
@@ -36,11 +33,7 @@ def max_trackable_ramp_hz_per_s(design):
 def jerk_phase_error(design, rate2_hz_per_s2):
     """Steady-state phase error (rad) to a frequency acceleration in Hz/s^2: exact discrete
     ``J / (g K3)`` with ``J = 2 pi rate2 / fs^3`` rad/sample^3 for order 3 (REFERENCES 2.1); unbounded otherwise."""
-    if rate2_hz_per_s2 == 0.0:
-        return 0.0
-    if design.loop_order != 3:
-        return inf
-    return 2.0 * pi * rate2_hz_per_s2 / design.sample_rate ** 3 / design.g_gains[2]
+    return steady_phase_error(design.g_gains, design.sample_rate, 3, rate2_hz_per_s2)
 
 
 def total_phase_error_variance(design, esn0, rate_hz_per_s, **signal_model):

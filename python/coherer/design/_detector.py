@@ -8,7 +8,7 @@ from math import comb, factorial, sqrt, pi
 
 import numpy as np
 
-from ..arguments import PLACEMENT_CHANNEL, PLACEMENT_MATCHED, validate_signal, validate_spec
+from ..arguments import PLACEMENT_CHANNEL, PLACEMENT_MATCHED, is_real, validate_signal, validate_spec
 
 
 def mth_power_noise(power, esn0):
@@ -36,8 +36,7 @@ EXP_SERIES_MAX_POWER = 4
 
 
 def _check_esn0(esn0):
-    if isinstance(esn0, bool) or not isinstance(esn0, (int, float, np.integer, np.floating)) \
-            or not np.isfinite(esn0) or esn0 <= 0.0:
+    if not is_real(esn0) or not np.isfinite(esn0) or esn0 <= 0.0:
         raise ValueError(f"esn0 must be a positive finite linear Es/N0, got {esn0!r}")
 
 

@@ -543,7 +543,7 @@ ASSERT_CASES = [
      [{"lock_threshold": "0"}, {"lock_threshold": "1.5"}, {"lock_threshold": "'false_lock:0.7'"},
       {"lock_threshold": "'false lock 1e-9'"}, {"lock_threshold": "'false_lock:0.5'"},
       {"window": "32", "lock_threshold": "'false_lock:1e-20'"}],
-     [{"lock_threshold": "1.0"}, {"lock_threshold": "'false_lock:0.4'"}]),
+     [{"lock_threshold": "1.0"}]),
     (D, "unlock_threshold is None or 0 <= unlock_threshold", [{"unlock_threshold": "-0.01"}],
      [{"unlock_threshold": "0.0"}]),
     # default lock threshold floor for N symbols per window: Qinv(1e-6)/sqrt(2N) (REFERENCES 7.2 rule),

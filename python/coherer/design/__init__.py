@@ -24,6 +24,10 @@ Design equations
              (``g K1 = b3 w0T, g K2 = a3 (w0T)^2, g K3 = (w0T)^3``); the damping factor places the
              complex pole pair: ``a3 = b3 = 1 + 2 zeta`` (closed-loop poles at ``-w0`` and
              ``w0(-zeta +- j sqrt(1 - zeta^2))``).
+    The three mappings are one table (:data:`LOOP_FORMULAS`). The loop analysis (closed loop,
+    bandwidth, responses, steady errors) works from a design's gain vector ``g_gains =
+    (gK1, ..., gK_d)``, its length the loop order d; only the acquisition and slip predictions,
+    whose published formulas differ by order, still look at the order.
 
 These textbook mappings make the discrete loop's *actual* noise bandwidth
 ``0.5 sum h[n]^2 / T`` drift above the request as B_L T grows (about +0.9 % at
@@ -94,28 +98,5 @@ from ._responses import (
     StepMetrics, step_metrics, StepResponses, step_responses, closed_loop_magnitude_db,
     closed_loop_peaking_db, closed_loop_3db_hz)
 
-__all__ = [
-    "MAX_BT", "MAX_DAMPING", "MAX_POWER", "KAPLAN_A2", "KAPLAN_A3", "KAPLAN_B3", "noise_bw_per_wn",
-    "natural_frequency", "third_order_bw_per_w0", "third_order_coefficients",
-    "bilinear_second_order", "first_order_gain", "rectangular_third_order", "textbook_gains",
-    "LOOP_ORDERS", "KERNEL_SLOTS", "LoopFormulas", "LOOP_FORMULAS", "loop_formulas", "loop_gains",
-    "gain_vector", "padded_gains", "steady_phase_error", "steady_rate_limit",
-    "closed_loop", "closed_loop_poles", "loop_state_matrices", "noise_bandwidth_bt",
-    "impulse_response", "LoopDesign", "validate_spec", "design_loop", "mth_power_noise",
-    "squaring_loss", "phase_error_variance", "db_to_linear", "continuous_ramp_phase_error",
-    "max_trackable_ramp_hz_per_s", "RICE_PHASE_SETTLING", "ACQ_WITHIN_LOCK_IN", "ACQ_PULLS_IN",
-    "ACQ_TOO_SLOW", "ACQ_BEYOND_HOLD", "ACQ_BEYOND_RANGE", "unambiguous_range_hz",
-    "lock_in_range_rad_s", "pull_out_rad_s", "pull_in_time_gardner_s", "pull_in_time_rice_s",
-    "phase_settling_time_rice_s", "acquisition_wn", "lock_in_range_hz", "pull_out_hz",
-    "pull_in_time_s", "Acquisition", "assess_acquisition", "SECOND_ORDER_SLIP_SHIFT_DB", "loop_snr",
-    "slip_time_bt_first_order", "mean_time_between_slips_s", "tikhonov_phase_variance",
-    "nonlinear_phase_error_variance", "SETTLING_BAND", "RESPONSE_TIME_CONSTANTS", "RESPONSE_POINTS",
-    "FAST_WINDOW_BT", "response_length", "StepMetrics", "step_metrics", "StepResponses",
-    "step_responses", "closed_loop_magnitude_db", "closed_loop_peaking_db", "closed_loop_3db_hz",
-    "jerk_phase_error", "total_phase_error_variance", "suggest_noise_bw", "PLACEMENT_CHANNEL",
-    "PLACEMENT_MATCHED", "PLACEMENTS", "MAX_SAMPLES_PER_SYMBOL", "MAX_MODULATION_INDEX",
-    "RRC_SPAN_SYMBOLS", "EXP_SERIES_MAX_POWER", "validate_signal", "rrc_taps",
-    "noise_variance_per_sample", "DetectorNoise", "detector_noise", "detector_noise_density",
-    "effective_squaring_loss", "LOCK_WINDOWS_PER_BLOCK", "SpectralAcquisition",
-    "line_detect_probability", "spectral_acquisition", "FrequencyStep", "frequency_step"
-]
+#: Every name imported above except the private ones.
+__all__ = sorted(name for name in dict(globals()) if not name.startswith("_"))

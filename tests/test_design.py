@@ -197,6 +197,31 @@ def test_exact_design_hits_requested_bandwidth(order, damping):
                 assert brute_force_bt(d.g_gains, n) == pytest.approx(bt, rel=1e-9)
 
 
+@pytest.mark.parametrize("order", [1, 2, 3])
+def test_design_carries_one_gain_per_order(order):
+    d = design.design_loop(1e4, 4, 50.0, 0.707, order)
+    assert len(d.g_gains) == order and all(g > 0.0 for g in d.g_gains)
+    assert design.padded_gains(d.g_gains) == pytest.approx([4.0 * k for k in (d.k1, d.k2, d.k3)], rel=1e-15)
+    assert tuple(design.LOOP_FORMULAS) == design.LOOP_ORDERS
+
+
+@pytest.mark.parametrize("order", [1, 2, 3])
+@pytest.mark.parametrize("bt", [0.002, 0.05])
+def test_state_matrices_match_closed_loop_transfer_function(order, bt):
+    # scipy.signal.ss2tf of x[n+1] = (I + Delta) x[n] + B theta[n], theta^ = x_0, against the
+    # polynomial closed loop z^-1 N(u) / (u^d + z^-1 N(u)) (module docstring); rel 1e-9
+    g = design.loop_gains(order, bt, 0.707)
+    delta, b = design.loop_state_matrices(g)
+    c = np.zeros((1, order))
+    c[0, 0] = 1.0
+    num, den = signal.ss2tf(np.eye(order) + delta, b[:, None], c, np.zeros((1, 1)))
+    b_ref, a_ref = design.closed_loop(g)
+    assert den == pytest.approx(a_ref, rel=1e-9, abs=1e-12)
+    assert num[0] == pytest.approx(b_ref, rel=1e-9, abs=1e-12)
+    # the kernel's zero-padded slots describe the same loop
+    assert design.noise_bandwidth_bt(design.padded_gains(g)) == design.noise_bandwidth_bt(g)
+
+
 # --- 2.1 steady-state errors ----------------------------------------------------------------
 
 def test_continuous_ramp_error_example():

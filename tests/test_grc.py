@@ -535,19 +535,25 @@ ASSERT_CASES = [
     (D, "samples_per_symbol == 1 or window >= 16 * samples_per_symbol",
      [{"window": "32", "samples_per_symbol": "4"}, {"window": "960", "samples_per_symbol": "64"}],
      [{"window": "64", "samples_per_symbol": "4"}, {"window": "32", "samples_per_symbol": "1"}]),
-    (D, "lock_threshold is None or (0 < float(lock_threshold.split(':')[1]) <= 0.5 if isinstance(lock_threshold, str) "
-        "and lock_threshold.startswith('false_lock:') else 0 < lock_threshold <= 1)",
+    # a false-lock probability becomes the threshold lockstat.false_lock_threshold gives (as the make
+    # template does): 0 at p = 0.5, above 1 for a tiny p over a short window, both refused
+    (D, "lock_threshold is None or 0 < (coherer.lockstat.false_lock_threshold(window // samples_per_symbol, "
+        "float(lock_threshold.split(':')[1])) if isinstance(lock_threshold, str) and lock_threshold.startswith("
+        "'false_lock:') else lock_threshold) <= 1",
      [{"lock_threshold": "0"}, {"lock_threshold": "1.5"}, {"lock_threshold": "'false_lock:0.7'"},
-      {"lock_threshold": "'false lock 1e-9'"}],
+      {"lock_threshold": "'false lock 1e-9'"}, {"lock_threshold": "'false_lock:0.5'"},
+      {"window": "32", "lock_threshold": "'false_lock:1e-20'"}],
      [{"lock_threshold": "1.0"}]),
     (D, "unlock_threshold is None or 0 <= unlock_threshold", [{"unlock_threshold": "-0.01"}],
      [{"unlock_threshold": "0.0"}]),
     # default lock threshold floor for N symbols per window: Qinv(1e-6)/sqrt(2N) (REFERENCES 7.2 rule),
     # 0.10504 for N = 1024, 0.21007 for 1024 samples at 4 samples per symbol (N = 256)
-    (D, "unlock_threshold is None or isinstance(lock_threshold, str) or unlock_threshold <= "
-        "(4.753424308822899 / (2 * (window // samples_per_symbol)) ** 0.5 if lock_threshold is None else lock_threshold)",
+    (D, "unlock_threshold is None or unlock_threshold <= (4.753424308822899 / (2 * (window // samples_per_symbol)) "
+        "** 0.5 if lock_threshold is None else coherer.lockstat.false_lock_threshold(window // samples_per_symbol, "
+        "float(lock_threshold.split(':')[1])) if isinstance(lock_threshold, str) else lock_threshold)",
      [{"lock_threshold": "0.5", "unlock_threshold": "0.6"}, {"unlock_threshold": "0.106"},
-      {"samples_per_symbol": "4", "unlock_threshold": "0.2101"}],
+      {"samples_per_symbol": "4", "unlock_threshold": "0.2101"},
+      {"lock_threshold": "'false_lock:1e-9'", "unlock_threshold": "0.9"}],
      [{"lock_threshold": "0.5", "unlock_threshold": "0.5"}, {"unlock_threshold": "0.105"},
       {"samples_per_symbol": "4", "unlock_threshold": "0.21"}]),
     (D, "point_angle is None or abs(point_angle) < float('inf')", [{"point_angle": "float('nan')"}],

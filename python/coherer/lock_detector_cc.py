@@ -6,26 +6,9 @@ import numpy as np
 import pmt
 from gnuradio import gr
 
-from . import lockstat, metadata
+from . import arguments, lockstat, metadata
 from ._long_calls import request_long_calls
-from .design import MAX_POWER
 from .mth_power_loop_cc import default_point_angle
-
-#: Accepted window lengths, samples.
-MIN_WINDOW = 32
-MAX_WINDOW = 1 << 20
-#: Accepted oversampling, samples per symbol.
-MAX_SAMPLES_PER_SYMBOL = 64
-#: Fewest symbols a window may hold when the input is oversampled.
-MIN_SYMBOLS = 16
-
-
-def _real(name, value):
-    """``float(value)``, or ValueError naming the parameter if it is not a real number."""
-    try:
-        return float(value)
-    except (TypeError, ValueError):
-        raise ValueError(f"{name} must be a real number, got {value!r}") from None
 
 
 def _tag_double(value):
@@ -116,48 +99,13 @@ class lock_detector_cc(gr.sync_block):
 
     def __init__(self, sample_rate, power, window=1024, lock_threshold=None, unlock_threshold=None,
                  point_angle=None, status_interval=0, samples_per_symbol=1, name="lock_detector_cc"):
-        sample_rate, power, window = (_real(k, v) for k, v in
-                                      (("sample_rate", sample_rate), ("power", power), ("window", window)))
-        status_interval = _real("status_interval", status_interval)
-        sps = _real("samples_per_symbol", samples_per_symbol)
-        if lock_threshold is not None:
-            lock_threshold = _real("lock_threshold", lock_threshold)
-        if unlock_threshold is not None:
-            unlock_threshold = _real("unlock_threshold", unlock_threshold)
-        if point_angle is not None:
-            point_angle = _real("point_angle", point_angle)
-        if not np.isfinite(sample_rate) or sample_rate <= 0:
-            raise ValueError(f"sample_rate must be a positive number of samples/s, got {sample_rate!r}")
-        if not np.isfinite(power) or int(power) != power or not 1 <= power <= MAX_POWER:
-            raise ValueError(f"power must be an integer in 1..{MAX_POWER}, got {power!r}")
-        if not np.isfinite(window) or int(window) != window or not MIN_WINDOW <= window <= MAX_WINDOW:
-            raise ValueError(f"window must be an integer in {MIN_WINDOW}..{MAX_WINDOW} samples, got {window!r}")
-        if not np.isfinite(sps) or int(sps) != sps or not 1 <= sps <= MAX_SAMPLES_PER_SYMBOL:
-            raise ValueError(
-                f"samples_per_symbol must be an integer in 1..{MAX_SAMPLES_PER_SYMBOL}, got {samples_per_symbol!r}")
-        power, window, sps = int(power), int(window), int(sps)
-        if window % sps or (sps > 1 and window // sps < MIN_SYMBOLS):
-            raise ValueError(f"window must be a multiple of samples_per_symbol = {sps} holding at least "
-                             f"{MIN_SYMBOLS} symbols, got {window}")
-        symbols = window // sps
-        default_lock, default_unlock = lockstat.default_thresholds(symbols)
-        if lock_threshold is not None and (not np.isfinite(lock_threshold) or not 0.0 < lock_threshold <= 1.0):
-            raise ValueError(f"lock_threshold must be in (0, 1], got {lock_threshold!r}")
-        lock_floor = default_lock if lock_threshold is None else lock_threshold
-        if unlock_threshold is None and lock_threshold is not None and lock_threshold < default_unlock:
-            unlock_threshold = lock_threshold          # a low fixed lock threshold caps the unlock one
-        if unlock_threshold is not None and (not np.isfinite(unlock_threshold)
-                                             or not 0.0 <= unlock_threshold <= lock_floor):
-            raise ValueError(
-                f"unlock_threshold must be in [0, lock_threshold] = [0, {lock_floor:g}], got {unlock_threshold!r}")
+        checked = arguments.detector_arguments(sample_rate, power, window, lock_threshold, unlock_threshold,
+                                               point_angle, status_interval, samples_per_symbol)
+        power, window, sps, symbols = (checked[k] for k in ("power", "window", "samples_per_symbol", "symbols"))
+        lock_threshold, unlock_threshold = checked["lock_threshold"], checked["unlock_threshold"]
+        status_interval = checked["status_interval"]
         if point_angle is None:
             point_angle = default_point_angle(power)
-        if not np.isfinite(point_angle):
-            raise ValueError(f"point_angle must be a finite angle in rad, got {point_angle!r}")
-        if (not np.isfinite(status_interval) or int(status_interval) != status_interval
-                or (status_interval != 0 and status_interval < window)):
-            raise ValueError(
-                f"status_interval must be 0 (off) or an integer >= window = {window} samples, got {status_interval!r}")
 
         gr.sync_block.__init__(self, name=name, in_sig=[np.complex64],
                                out_sig=gr.py_io_signature(1, 3, [np.complex64, np.float32, np.float32]))

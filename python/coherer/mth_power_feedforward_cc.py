@@ -8,12 +8,12 @@ import pmt
 from gnuradio import gr
 
 from . import _feedforward_kernel as K
+from . import arguments
 from ._long_calls import request_long_calls
-from .design import MAX_POWER
 from .mth_power_loop_cc import default_point_angle
 
 #: Largest accepted window, samples.
-MAX_WINDOW = 65536
+MAX_WINDOW = arguments.MAX_FEEDFORWARD_WINDOW
 
 #: Names accepted for ``weighting`` and the kernel code of each.
 WEIGHTINGS = {
@@ -21,16 +21,6 @@ WEIGHTINGS = {
     "magnitude": K.WEIGHT_MAGNITUDE,  # F(|z|) = |z|
     "phase": K.WEIGHT_PHASE,          # F(|z|) = 1: phase only
 }
-
-
-def _is_real(value):
-    """True for a real number (bool excluded)."""
-    return isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool)
-
-
-def _is_integer(value):
-    """True for a finite real number with an integer value."""
-    return _is_real(value) and np.isfinite(value) and int(value) == value
 
 
 def default_weighting(power):
@@ -115,17 +105,9 @@ class mth_power_feedforward_cc(gr.sync_block):
 
     def __init__(self, sample_rate, power, window, point_angle=None, weighting=None,
                  reset_tag_key=None, diagnostics=False):
-        if not _is_real(sample_rate) or not np.isfinite(sample_rate) or sample_rate <= 0:
-            raise ValueError(f"sample_rate must be a positive number of samples/s, got {sample_rate!r}")
-        if not _is_integer(power) or not 1 <= power <= MAX_POWER:
-            raise ValueError(f"power must be an integer in 1..{MAX_POWER}, got {power!r}")
-        if not _is_integer(window) or not 1 <= window <= MAX_WINDOW:
-            raise ValueError(f"window must be an integer in 1..{MAX_WINDOW} samples, got {window!r}")
-        power, window = int(power), int(window)
+        power, window = arguments.feedforward_arguments(sample_rate, power, window, point_angle)
         if point_angle is None:
             point_angle = default_point_angle(power)
-        if not _is_real(point_angle) or not np.isfinite(point_angle):
-            raise ValueError(f"point_angle must be a finite angle in rad, got {point_angle!r}")
         if weighting is None:
             weighting = default_weighting(power)
         if not isinstance(weighting, str) or weighting not in WEIGHTINGS:

@@ -10,7 +10,7 @@ from gnuradio import gr
 
 from . import _loop_kernel as K
 from ._long_calls import request_long_calls
-from . import acquisition, design, lockstat, metadata
+from . import acquisition, arguments, design, lockstat, metadata
 
 #: Default averaging length of the signal-power (M2M4) estimator, samples:
 #: at least this many, and at least AVERAGING_PER_BT / (B_L T).
@@ -104,26 +104,14 @@ class mth_power_loop_cc(gr.sync_block):
     def __init__(self, sample_rate, power, noise_bw_hz, damping=0.707, loop_order=2,
                  freq_guess_hz=0.0, freq_range_hz=None, acquire=True, point_angle=None,
                  tag_interval=0, diagnostics=False, name="mth_power_loop_cc"):
-        design.validate_spec(sample_rate, power, noise_bw_hz, damping, loop_order)
+        self._freq_range, self._tag_interval = arguments.loop_arguments(
+            sample_rate, power, noise_bw_hz, damping, loop_order, freq_guess_hz, freq_range_hz,
+            point_angle, tag_interval)
         self._fs = float(sample_rate)
         self._power = int(power)
-        max_range = self._fs / (2.0 * self._power)
-        if freq_range_hz is None:
-            freq_range_hz = max_range
-        if not np.isfinite(freq_range_hz) or not 0 < freq_range_hz <= max_range:
-            raise ValueError(
-                f"freq_range_hz must be in (0, sample_rate/(2*power)] = (0, {max_range:g}] Hz, "
-                f"got {freq_range_hz!r}")
-        self._freq_range = float(freq_range_hz)
-        self._check_freq("freq_guess_hz", freq_guess_hz)
         if point_angle is None:
             point_angle = default_point_angle(self._power)
-        if not np.isfinite(point_angle):
-            raise ValueError(f"point_angle must be a finite angle in rad, got {point_angle!r}")
-        if int(tag_interval) != tag_interval or tag_interval < 0:
-            raise ValueError(f"tag_interval must be an integer >= 0 samples, got {tag_interval!r}")
         self._point_angle = float(point_angle)
-        self._tag_interval = int(tag_interval)
         self._diagnostics = bool(diagnostics)
         self._acquire = bool(acquire)
 
@@ -170,8 +158,7 @@ class mth_power_loop_cc(gr.sync_block):
         return 2.0 * pi * float(hz) / self._fs
 
     def _check_freq(self, name, hz):
-        if not np.isfinite(hz) or abs(hz) > self._freq_range:
-            raise ValueError(f"{name} must be within +-freq_range_hz = +-{self._freq_range:g} Hz, got {hz!r}")
+        arguments.check_freq_within(name, hz, self._freq_range)
 
     def _publish(self, noise_bw_hz, damping, loop_order):
         """Design the loop and publish gains in one atomic assignment."""

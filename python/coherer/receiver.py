@@ -84,7 +84,7 @@ def stream_timing(read, sample_rate, num_samples, symbol_rate_hz=None, max_sampl
     """:func:`symbol_timing` for any stream of ``num_samples`` samples at ``sample_rate``
     (samples/s) that ``read(start, count)`` returns pieces of; at most ``max_samples``
     of them are analysed."""
-    from .lock_detector_cc import MAX_SAMPLES_PER_SYMBOL
+    from .arguments import MAX_SAMPLES_PER_SYMBOL
 
     def whole(exact):          # the detector works at a whole number of samples per symbol
         return int(min(MAX_SAMPLES_PER_SYMBOL, max(1, round(exact))))
@@ -124,7 +124,7 @@ def matched_filter_taps(sample_rate, symbol_rate_hz, rolloff):
 def detector_window(window, samples_per_symbol):
     """The detector window (samples) for a requested one: a whole number of symbols, at
     least the detector's minimum."""
-    from .lock_detector_cc import MIN_SYMBOLS
+    from .arguments import MIN_SYMBOLS
     sps = int(samples_per_symbol)
     return max(MIN_SYMBOLS * sps if sps > 1 else 0, (int(window) // sps) * sps)
 

@@ -22,7 +22,7 @@ REPORT_FOLDER = "carrier_{}"
 def carrier_spec(text):
     """``HZ[:M]``: a carrier offset from the capture centre (k, M, G suffixes allowed) and
     optionally its own M. Returns ``(hz, M or None)``."""
-    from ..design import MAX_POWER
+    from ..arguments import MAX_POWER
     hz, sep, m = str(text).partition(":")
     f = errors.finite_number(hz)
     if not sep:
@@ -68,7 +68,7 @@ def _library_message(msg):
 def plan(args, rec, settings):
     """The channel plans, with every setting checked against each channel (UserError)."""
     from ..channels import channel_settings, plan_channels
-    from ..design import validate_spec
+    from ..arguments import validate_spec
     if args.freq_guess:
         raise UserError("--freq-guess does not apply with --carrier (each channel's loop "
                         "starts at its carrier)")

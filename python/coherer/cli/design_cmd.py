@@ -152,12 +152,13 @@ def predictions(args):
                 design.total_phase_error_variance(given, esn0, args.doppler_rate, **model))
     d = _design_or_user_error(args, noise_bw)
     steps = design.step_responses(d)
+    g_gains = design.padded_gains(d.g_gains)
     result.update({
         "sample_rate_hz": d.sample_rate, "power": d.power, "loop_order": d.loop_order, "damping": d.damping,
         "noise_bw_hz": d.noise_bw_hz, "bt": d.bt,
         "actual_noise_bw_hz": d.actual_bt * d.sample_rate, "actual_bt": d.actual_bt,
         "design_bt": d.design_bt,
-        "k1": d.k1, "k2": d.k2, "k3": d.k3, "g_k1": d.g_gains[0], "g_k2": d.g_gains[1], "g_k3": d.g_gains[2],
+        "k1": d.k1, "k2": d.k2, "k3": d.k3, "g_k1": g_gains[0], "g_k2": g_gains[1], "g_k3": g_gains[2],
         "natural_frequency_rad_s": d.natural_frequency,
         "natural_frequency_hz": d.natural_frequency / (2.0 * math.pi),
         "lock_in_range_hz": design.lock_in_range_hz(d), "pull_out_hz": design.pull_out_hz(d),

@@ -36,8 +36,7 @@ def int_in(lo, hi):
 
 def add_loop_options(p, power_required=True, noise_bw_default=None):
     """Loop and detector options shared by ``run`` and ``demo``."""
-    from ..design import MAX_BT, MAX_DAMPING, MAX_POWER
-    from ..lock_detector_cc import MAX_WINDOW, MIN_WINDOW
+    from ..arguments import LOOP_ORDERS, MAX_BT, MAX_DAMPING, MAX_POWER, MAX_WINDOW, MIN_WINDOW
 
     g = p.add_argument_group("carrier loop and lock detector")
     g.add_argument("--power", type=int_in(1, MAX_POWER), required=power_required, metavar="M",
@@ -51,7 +50,7 @@ def add_loop_options(p, power_required=True, noise_bw_default=None):
                                                        else f" (default {noise_bw_default:g})"))
     g.add_argument("--damping", type=positive_float, default=0.707, metavar="ZETA",
                    help=f"damping factor, (0, {MAX_DAMPING:g}] (default 0.707)")
-    g.add_argument("--loop-order", type=int_in(1, 3), default=2, metavar="N",
+    g.add_argument("--loop-order", type=int_in(min(LOOP_ORDERS), max(LOOP_ORDERS)), default=2, metavar="N",
                    help="loop order 1, 2 or 3 (3 follows a Doppler ramp; default 2)")
     g.add_argument("--window", type=int_in(MIN_WINDOW, MAX_WINDOW), default=1024, metavar="N",
                    help=f"lock-detector window, samples, {MIN_WINDOW}..{MAX_WINDOW} (default 1024)")
@@ -127,19 +126,18 @@ def settings_from_args(args):
 def check_settings(settings, sample_rate, num_samples):
     """Check loop settings against a recording's rate (samples/s) and length (samples);
     raise UserError naming the option."""
-    from ..design import validate_spec
+    from .. import arguments
     try:
-        validate_spec(sample_rate, settings.power, settings.noise_bw_hz, settings.damping,
-                      settings.loop_order)
+        arguments.validate_spec(sample_rate, settings.power, settings.noise_bw_hz, settings.damping,
+                                settings.loop_order)
+        arguments.check_freq_within("freq_guess_hz", settings.freq_guess_hz,
+                                    arguments.max_freq_range(sample_rate, settings.power), "sample rate/(2M)")
     except ValueError as exc:
         raise UserError(_option_message(str(exc))) from None
-    limit = sample_rate / (2.0 * settings.power)
-    if abs(settings.freq_guess_hz) > limit:
-        raise UserError(f"--freq-guess must be within +-sample rate/(2M) = +-{limit:g} Hz, "
-                        f"got {settings.freq_guess_hz:g}")
-    if settings.symbol_rate_hz is not None and not sample_rate / 64 <= settings.symbol_rate_hz <= sample_rate:
-        raise UserError(f"--symbol-rate must be within sample rate/64 .. sample rate = "
-                        f"{sample_rate / 64:g} .. {sample_rate:g} symbols/s, got {settings.symbol_rate_hz:g}")
+    lowest = sample_rate / arguments.MAX_SAMPLES_PER_SYMBOL
+    if settings.symbol_rate_hz is not None and not lowest <= settings.symbol_rate_hz <= sample_rate:
+        raise UserError(f"--symbol-rate must be within sample rate/{arguments.MAX_SAMPLES_PER_SYMBOL} .. "
+                        f"sample rate = {lowest:g} .. {sample_rate:g} symbols/s, got {settings.symbol_rate_hz:g}")
     if settings.window > num_samples:
         raise UserError(f"--window {settings.window} is longer than the recording "
                         f"({num_samples} samples)")

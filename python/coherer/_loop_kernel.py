@@ -335,6 +335,16 @@ def phasor_pair(angle, power):
 
 
 @njit(cache=True, inline="always")
+def nco_resync(phase, freq, power):
+    """Exact NCO phasors from the phase accumulator ``phase`` (rad) and the frequency
+    register ``freq`` (rad/sample), which becomes ``nco_ref``: returns ``(P re, P im, P^M re,
+    P^M im, nco_ref, e^{j nco_ref} re, im, e^{j M nco_ref} re, im)``."""
+    ph_re, ph_im, pm_re, pm_im = phasor_pair(phase, power)
+    rf_re, rf_im, rm_re, rm_im = phasor_pair(freq, power)
+    return ph_re, ph_im, pm_re, pm_im, freq, rf_re, rf_im, rm_re, rm_im
+
+
+@njit(cache=True, inline="always")
 def nco_advance(phase, step, freq, v, ph_re, ph_im, pm_re, pm_im, rf_re, rf_im, rm_re, rm_im,
                 power):
     """One NCO sample: ``theta^ += step + freq`` (rad, wrapped to [-pi, pi)) and the phasors
@@ -689,9 +699,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             next_mark += 1
         if nco_left <= 0.0:
             # exact resync every NCO_RESYNC samples of the stream: no drift in phase or magnitude
-            ph_re, ph_im, pm_re, pm_im = phasor_pair(phase, power)
-            nco_ref = acc1
-            rf_re, rf_im, rm_re, rm_im = phasor_pair(nco_ref, power)
+            ph_re, ph_im, pm_re, pm_im, nco_ref, rf_re, rf_im, rm_re, rm_im = nco_resync(
+                phase, acc1, power)
             slow_re = np.cos(power * ref_r)
             slow_im = np.sin(power * ref_r)
             nco_left = NCO_RESYNC

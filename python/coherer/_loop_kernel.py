@@ -123,92 +123,117 @@ from numba import njit
 from ._numeric import half_power, pair_power
 from .lockstat import null_contrasts, quarter_start, update_lock
 
-# state[] layout -------------------------------------------------------------------
-S_PHASE = 0      # theta^, rad, wrapped to [-pi, pi)
-S_FREQ = 1       # acc1: NCO frequency register, rad/sample
-S_ACC2 = 2       # acc2: frequency-rate register, rad/sample^2 (3rd order)
-S_M2 = 3         # exponential average of |x|^2 (not bias-corrected)
-S_M4 = 4         # exponential average of |x|^4
-S_MW = 5         # exponential average of 1 (bias correction of M2, M4)
-S_GAPS = 6       # count of gap samples (non-finite or zero) seen
-S_LAST_STEP = 7  # proportional part K1 e of the last NCO step, rad/sample
-S_LOCK_N = 8     # valid samples in this window
-S_LOCK_POS = 9  # samples into this window
-S_LOCKED = 10    # 1.0 locked, 0.0 not
-S_METRIC = 11    # statistic of the last complete window
-S_REF_R = 12     # slip tracker residual: unwrapped NCO phase minus reference, rad
-S_REF_F = 13     # reference frequency, rad/sample
-S_REF_A = 14     # reference frequency rate, rad/sample^2
-S_SLIPS = 15     # signed slips declared so far
-S_FAST_M2 = 16   # fast exponential average of |x|^2 (level-step detector)
-S_WIN_STEPS = 17 # sum of NCO steps in this lock window, rad
-S_PREV_STEP = 18 # mean NCO step of the previous window, rad/sample
-S_REF_AGE = 19   # lock windows since the slip reference started
-S_LP_RE = 20     # low-passed unit detector phasor d/|d| (strong-signal slip tracker)
-S_LP_IM = 21
-S_PSI = 22       # unwrapped angle of the low-passed phasor, rad (M domain)
-S_PSI_LAST = 23  # its last wrapped value
-S_PSI_REF = 24   # the detector angle's present stable point 2*pi*k, rad
-S_SLIP_POS = 25  # samples since the angle was last evaluated
-S_STRONG = 26    # 1.0 when the last window's loop SNR was at least STRONG_LOOP_SNR
-S_PH_RE = 27     # NCO phasor e^{j theta^} (recursion between exact resyncs)
-S_PH_IM = 28
-S_PM_RE = 29     # its M-th power e^{j M theta^}, advanced alongside
-S_PM_IM = 30
-S_NCO_REF = 31   # frequency register (rad/sample) at the last resync
-S_NCO_LEFT = 32  # samples until the next exact resync
-S_NORM_LEFT = 33 # samples until the detector normalisation is recomputed
-S_INV_RMS = 34   # 1/sqrt(M2) in use, 1/amplitude
-S_INV_NORM = 35  # 1/(S/M2)^(M/2) in use
-S_CAP = 36       # limiter threshold in use, power units (0: no moments yet)
-S_LINE_RE = 37   # exponential average of the detector d: the M-th power line (M-domain phasor)
-S_LINE_IM = 38   # measured against the NCO
-S_LINE_W = 39    # its weight since the last restart (bias correction)
-S_LINE_P = 40    # exponential average of |d|^2 (the line estimate's noise scale)
-S_LINE_ON = 41   # 1.0 while the detector is normalised by the line estimate
-S_FREE_RE = 42   # reference e^{j M theta~} of the lock statistic: set onto the NCO's mean M-th
-S_FREE_IM = 43   # power phasor at each window end, advanced at the rate below in between
-S_FREE_I = 44    # sums of the in-phase and quadrature projection of (y/|y|)^M on the
-S_FREE_Q = 45    # free-running reference over this quarter of the lock window so far
-S_FREE_F = 46    # its step, rad/sample (from S_FREE_LEVEL and S_FREE_TREND)
-S_FREE_A = 47    # its change per sample (the trend spread over a window)
-S_QUARTERS = 48  # the window's quarter sums: in-phase 48..51, quadrature 52..55
-S_FREE_LEVEL = 56  # smoothed mean NCO step per window (rad/sample) and its trend per
-S_FREE_TREND = 57  # window: the free-running reference's rate (Holt's linear method)
-S_NCO_REL_RE = 58  # sum over this lock window of the NCO's M-th power phasor against the
-S_NCO_REL_IM = 59  # reference: where the NCO sat on average, relative to the reference
-S_SLOW_RE = 60   # e^{j M ref_r}: the slip tracker's slow reference against the NCO (M domain),
-S_SLOW_IM = 61   # advanced with ref_r, recomputed exactly at each NCO resync
-S_SLOW_LINE_RE = 62  # the same average of d measured against the slow reference, d e^{j M ref_r}
-S_SLOW_LINE_IM = 63
-S_ANGLE_COUNTS = 64  # 1.0 while the detector angle counts slips: from lock on, and after an
-                     # unlock for as long as the detector phasor stays coherent at a strong signal
-STATE_SIZE = 65
+# state[] and params[] layouts ------------------------------------------------------
+# Each layout is one list of (name, slots, meaning); the index of field ``name`` is the
+# module constant ``S_NAME`` (state) or ``P_NAME`` (params), generated below, so the
+# kernels see plain global ints and nothing is numbered by hand.
+REF_STAGES = 3   # settling stages of the slip reference (REF_STAGE_END)
 
-# params[] layout ------------------------------------------------------------------
-P_K1 = 0
-P_K2 = 1
-P_K3 = 2
-P_ROT_RE = 3     # e^{-j M point_angle}
-P_ROT_IM = 4
-P_FMIN = 5       # frequency register limits, rad/sample
-P_FMAX = 6
-P_ALPHA = 7      # moment averaging coefficient (1 / averaging length)
-P_STEP_IN_FREQ = 8   # 1.0: report the whole NCO step as frequency (1st order), else 0.0
-P_LOCK_WINDOW = 9    # lock-indicator window, samples
-P_REF_G1 = 10        # slip reference tracker gains (3rd order, unit detector gain)
-P_REF_G2 = 11
-P_REF_G3 = 12
-P_SIG2_FLOOR = 13    # floor of (S/M2)^2: caps the detector-gain boost at low SNR
-P_START_MW = 14      # the loop closes once the moment weight reaches this (start-up)
-P_E_MAX = 15         # clip of the normalised detector output: K1 e_max = pi / M
-P_REF_STAGE_G = 16   # 3 gains per settling stage of the slip reference (REF_STAGES stages)
-REF_STAGES = 3
-P_LP_BETA = P_REF_STAGE_G + 3 * REF_STAGES    # low-pass coefficient of the detector phasor
-P_LP_DECIM = P_LP_BETA + 1                    # its angle is unwrapped every this many samples
-P_BT = P_LP_DECIM + 1                         # B_L T of the loop (for the loop-SNR estimate)
-P_LINE_ALPHA = P_BT + 1                       # averaging coefficient of the line estimate
-PARAMS_SIZE = P_LINE_ALPHA + 1
+STATE_FIELDS = (
+    ("phase", 1, "theta^, rad, wrapped to [-pi, pi)"),
+    ("freq", 1, "acc1: NCO frequency register, rad/sample"),
+    ("acc2", 1, "acc2: frequency-rate register, rad/sample^2 (3rd order)"),
+    ("m2", 1, "exponential average of |x|^2 (not bias-corrected)"),
+    ("m4", 1, "exponential average of |x|^4"),
+    ("mw", 1, "exponential average of 1 (bias correction of M2, M4)"),
+    ("gaps", 1, "count of gap samples (non-finite or zero) seen"),
+    ("last_step", 1, "proportional part K1 e of the last NCO step, rad/sample"),
+    ("lock_n", 1, "valid samples in this lock window"),
+    ("lock_pos", 1, "samples into this lock window"),
+    ("locked", 1, "1.0 locked, 0.0 not"),
+    ("metric", 1, "lock statistic of the last complete window"),
+    ("ref_r", 1, "slip tracker residual: unwrapped NCO phase minus reference, rad"),
+    ("ref_f", 1, "slip reference frequency, rad/sample"),
+    ("ref_a", 1, "slip reference frequency rate, rad/sample^2"),
+    ("slips", 1, "signed slips declared so far"),
+    ("fast_m2", 1, "fast exponential average of |x|^2 (level-step detector)"),
+    ("win_steps", 1, "sum of NCO steps in this lock window, rad"),
+    ("prev_step", 1, "mean NCO step of the previous window, rad/sample"),
+    ("ref_age", 1, "lock windows since the slip reference started"),
+    ("lp_re", 1, "low-passed unit detector phasor d/|d| (strong-signal slip tracker), real"),
+    ("lp_im", 1, "... imaginary part"),
+    ("psi", 1, "unwrapped angle of the low-passed phasor, rad (M domain)"),
+    ("psi_last", 1, "its last wrapped value, rad"),
+    ("psi_ref", 1, "the detector angle's present stable point 2*pi*k, rad"),
+    ("slip_pos", 1, "samples since the angle was last evaluated"),
+    ("strong", 1, "1.0 when the last window's loop SNR was at least STRONG_LOOP_SNR"),
+    ("ph_re", 1, "NCO phasor e^{j theta^} (recursion between exact resyncs), real"),
+    ("ph_im", 1, "... imaginary part"),
+    ("pm_re", 1, "its M-th power e^{j M theta^}, advanced alongside, real"),
+    ("pm_im", 1, "... imaginary part"),
+    ("nco_ref", 1, "frequency register at the last resync, rad/sample"),
+    ("nco_left", 1, "samples until the next exact resync"),
+    ("norm_left", 1, "samples until the detector normalisation is recomputed"),
+    ("inv_rms", 1, "1/sqrt(M2) in use, 1/amplitude"),
+    ("inv_norm", 1, "1/A_M in use (1/(S/M2)^(M/2) while acquiring)"),
+    ("cap", 1, "limiter threshold in use, power units (0: no moments yet)"),
+    ("line_re", 1, "exponential average of the detector d against the NCO: the M-th power "
+                   "line (M-domain phasor), real"),
+    ("line_im", 1, "... imaginary part"),
+    ("line_w", 1, "its weight since the last restart (bias correction)"),
+    ("line_p", 1, "exponential average of |d|^2 (the line estimate's noise scale)"),
+    ("line_on", 1, "1.0 while the detector is normalised by the line estimate"),
+    ("free_re", 1, "reference e^{j M theta~} of the lock statistic: set onto the NCO's mean "
+                   "M-th power phasor at each window end, advanced at free_f in between; real"),
+    ("free_im", 1, "... imaginary part"),
+    ("free_i", 1, "sum of the in-phase projection of (y/|y|)^M on that reference over this "
+                  "quarter of the lock window so far"),
+    ("free_q", 1, "... and of the quadrature projection"),
+    ("free_f", 1, "the reference's step, rad/sample (from free_level and free_trend)"),
+    ("free_a", 1, "its change per sample (the trend spread over a window), rad/sample^2"),
+    ("quarters", 8, "the window's quarter sums: in-phase 0..3, quadrature 4..7"),
+    ("free_level", 1, "smoothed mean NCO step per window, rad/sample (Holt's linear method)"),
+    ("free_trend", 1, "its trend per window, rad/sample"),
+    ("nco_rel_re", 1, "sum over this lock window of the NCO's M-th power phasor against the "
+                      "reference: where the NCO sat on average; real"),
+    ("nco_rel_im", 1, "... imaginary part"),
+    ("slow_re", 1, "e^{j M ref_r}: the slip tracker's slow reference against the NCO (M domain), "
+                   "advanced with ref_r, recomputed exactly at each NCO resync; real"),
+    ("slow_im", 1, "... imaginary part"),
+    ("slow_line_re", 1, "the line average of d measured against the slow reference, "
+                        "d e^{j M ref_r}; real"),
+    ("slow_line_im", 1, "... imaginary part"),
+    ("angle_counts", 1, "1.0 while the detector angle counts slips: from lock on, and after an "
+                        "unlock for as long as the detector phasor stays coherent at a strong signal"),
+)
+
+PARAMS_FIELDS = (
+    ("k1", 1, "proportional gain, rad/sample per unit detector output"),
+    ("k2", 1, "integral gain"),
+    ("k3", 1, "double-integral gain (3rd order)"),
+    ("rot_re", 1, "e^{-j M point_angle}, real"),
+    ("rot_im", 1, "... imaginary part"),
+    ("fmin", 1, "lower frequency register limit, rad/sample"),
+    ("fmax", 1, "upper frequency register limit, rad/sample"),
+    ("alpha", 1, "moment averaging coefficient (1 / averaging length)"),
+    ("step_in_freq", 1, "1.0: report the whole NCO step as frequency (1st order), else 0.0"),
+    ("lock_window", 1, "lock-indicator window, samples"),
+    ("ref_g1", 1, "slip reference tracker gains (3rd order, unit detector gain)"),
+    ("ref_g2", 1, ""),
+    ("ref_g3", 1, ""),
+    ("sig2_floor", 1, "floor of (S/M2)^2: caps the detector-gain boost at low SNR"),
+    ("start_mw", 1, "the loop closes once the moment weight reaches this (start-up)"),
+    ("e_max", 1, "clip of the normalised detector output: K1 e_max = pi / M"),
+    ("ref_stage_g", 3 * REF_STAGES, "3 gains per settling stage of the slip reference"),
+    ("lp_beta", 1, "low-pass coefficient of the detector phasor"),
+    ("lp_decim", 1, "its angle is unwrapped every this many samples"),
+    ("bt", 1, "B_L T of the loop (for the loop-SNR estimate)"),
+    ("line_alpha", 1, "averaging coefficient of the line estimate"),
+)
+
+
+def _number(fields, prefix):
+    """Define the module constant ``prefix + NAME`` = slot index of each field; return the
+    number of slots."""
+    at = 0
+    for name, slots, _ in fields:
+        globals()[prefix + name.upper()] = at
+        at += slots
+    return at
+
+
+STATE_SIZE = _number(STATE_FIELDS, "S_")
+PARAMS_SIZE = _number(PARAMS_FIELDS, "P_")
 
 LIMIT = 100.0                      # sample power limit relative to M2 (+20 dB)
 FAST_ALPHA = 1.0 / 64.0            # averaging coefficient of the level-step detector
@@ -233,8 +258,40 @@ LINE_SIGNIFICANCE = 64.0           # the line estimate is used once it stands 8 
 
 
 def new_state():
-    """A fresh state array: NCO at 0 rad and 0 rad/sample, no moments yet, unlocked."""
+    """A fresh state array (STATE_SIZE slots): NCO at 0 rad and 0 rad/sample, no moments yet,
+    unlocked."""
     return np.zeros(STATE_SIZE, dtype=np.float64)
+
+
+def state_dict(state):
+    """The state array by field name (floats; ``quarters`` an array copy), for tests and
+    diagnostics."""
+    fields = {}
+    at = 0
+    for name, slots, _ in STATE_FIELDS:
+        fields[name] = float(state[at]) if slots == 1 else state[at:at + slots].copy()
+        at += slots
+    return fields
+
+
+def steer_nco(state, freq):
+    """Re-steer the NCO to ``freq`` rad/sample (phase kept): the frequency register is set and
+    the rate register cleared; the slip trackers and the lock statistic's reference rate move
+    with it, so the jump is not a slip."""
+    state[S_FREQ] = freq
+    state[S_ACC2] = 0.0
+    state[S_REF_R] = 0.0
+    state[S_SLOW_RE] = 1.0
+    state[S_SLOW_IM] = 0.0
+    state[S_ANGLE_COUNTS] = 0.0          # the detector angle jumps with the NCO
+    state[S_REF_F] = freq
+    state[S_REF_A] = 0.0
+    state[S_WIN_STEPS] = 0.0
+    state[S_PREV_STEP] = freq
+    state[S_FREE_F] = freq               # the lock statistic's reference follows too
+    state[S_FREE_A] = 0.0
+    state[S_FREE_LEVEL] = freq
+    state[S_FREE_TREND] = 0.0
 
 
 @njit(cache=True)
@@ -255,6 +312,8 @@ def loop_snr(m2, m4, power, bt):
     return 1.0 / (bt * v)
 
 
+# --- NCO ---------------------------------------------------------------------------
+
 @njit(cache=True, inline="always")
 def _rotate(q_re, q_im, v):
     """q e^{j v}: a short series for |v| <= SMALL_ANGLE (cos to v^6, error < 3e-17;
@@ -267,6 +326,252 @@ def _rotate(q_re, q_im, v):
         c = np.cos(v)
         s = np.sin(v)
     return q_re * c - q_im * s, q_re * s + q_im * c
+
+
+@njit(cache=True, inline="always")
+def phasor_pair(angle, power):
+    """``(cos a, sin a, cos Ma, sin Ma)`` for an angle ``a`` in rad."""
+    return np.cos(angle), np.sin(angle), np.cos(power * angle), np.sin(power * angle)
+
+
+@njit(cache=True, inline="always")
+def nco_resync(phase, freq, power):
+    """Exact NCO phasors from the phase accumulator ``phase`` (rad) and the frequency
+    register ``freq`` (rad/sample), which becomes ``nco_ref``: returns ``(P re, P im, P^M re,
+    P^M im, nco_ref, e^{j nco_ref} re, im, e^{j M nco_ref} re, im)``."""
+    ph_re, ph_im, pm_re, pm_im = phasor_pair(phase, power)
+    rf_re, rf_im, rm_re, rm_im = phasor_pair(freq, power)
+    return ph_re, ph_im, pm_re, pm_im, freq, rf_re, rf_im, rm_re, rm_im
+
+
+@njit(cache=True, inline="always")
+def nco_advance(phase, step, freq, v, ph_re, ph_im, pm_re, pm_im, rf_re, rf_im, rm_re, rm_im,
+                power):
+    """One NCO sample: ``theta^ += step + freq`` (rad, wrapped to [-pi, pi)) and the phasors
+    ``P = e^{j theta^}``, ``P^M`` turned by ``e^{j nco_ref}`` (given as ``rf``, its M-th power
+    ``rm``) times ``e^{j v}``, ``v = step + freq - nco_ref`` rad (a small angle).
+    Returns ``(phase, P re, P im, P^M re, P^M im)``."""
+    phase += step
+    phase += freq
+    q_re = ph_re * rf_re - ph_im * rf_im
+    q_im = ph_re * rf_im + ph_im * rf_re
+    qm_re = pm_re * rm_re - pm_im * rm_im
+    qm_im = pm_re * rm_im + pm_im * rm_re
+    ph_re, ph_im = _rotate(q_re, q_im, v)
+    pm_re, pm_im = _rotate(qm_re, qm_im, power * v)
+    if phase >= np.pi or phase < -np.pi:
+        phase -= TWO_PI * np.floor((phase + np.pi) / TWO_PI)
+    return phase, ph_re, ph_im, pm_re, pm_im
+
+
+# --- loop filter -------------------------------------------------------------------
+
+@njit(cache=True, inline="always")
+def loop_filter(e, acc1, acc2, nco_ref, k1, k2, k3, fmin, fmax):
+    """Order 1-3 loop filter on the normalised detector output ``e``:
+    ``acc2 += K3 e; acc1 += K2 e + acc2`` with ``acc1`` held in [fmin, fmax] rad/sample
+    (``acc2`` then not pushing further). Returns ``(K1 e, acc1, acc2, v)``, rad/sample,
+    where ``K1 e + acc1`` is this sample's NCO step and ``v`` that step minus ``nco_ref``."""
+    v = (k1 + k2 + k3) * e + (acc1 + acc2 - nco_ref)
+    acc2 += k3 * e
+    acc1 += k2 * e + acc2
+    if acc1 > fmax:
+        acc1 = fmax
+        if acc2 > 0.0:
+            acc2 = 0.0
+        v = k1 * e + acc1 - nco_ref
+    elif acc1 < fmin:
+        acc1 = fmin
+        if acc2 < 0.0:
+            acc2 = 0.0
+        v = k1 * e + acc1 - nco_ref
+    return k1 * e, acc1, acc2, v
+
+
+# --- line and detector normalisation -----------------------------------------------
+
+@njit(cache=True, inline="always")
+def line_update(line_re, line_im, slow_line_re, slow_line_im, line_w, line_p,
+                d_re, d_im, slow_re, slow_im, mag, line_alpha):
+    """One sample of the M-th power line averages: of the detector ``d`` (against the NCO), of
+    ``d e^{j M ref_r}`` (against the slow reference ``slow``), of 1 (the weight) and of
+    ``|d|^2 = mag^2``. Returns the six updated averages in the order given."""
+    line_re += line_alpha * (d_re - line_re)
+    line_im += line_alpha * (d_im - line_im)
+    slow_line_re += line_alpha * (d_re * slow_re - d_im * slow_im - slow_line_re)
+    slow_line_im += line_alpha * (d_re * slow_im + d_im * slow_re - slow_line_im)
+    line_w += line_alpha * (1.0 - line_w)
+    line_p += line_alpha * (mag * mag - line_p)
+    return line_re, line_im, slow_line_re, slow_line_im, line_w, line_p
+
+
+@njit(cache=True, inline="always")
+def normalisation(m2, m4, mw, locked, line_re, line_im, slow_line_re, slow_line_im, line_w,
+                  line_p, line_alpha, sig2_floor, power):
+    """Detector normalisation from the moments (``m2, m4`` with weight ``mw``) and the line
+    averages. Returns ``(1/sqrt(M2) in 1/amplitude, limiter level in power units, 1/A_M,
+    line_on)``: ``A_M`` is the larger bias-corrected line magnitude while ``locked`` and it
+    stands LINE_SIGNIFICANCE variances out (``line_on`` 1.0), else ``(S/M2)^(M/2)`` from
+    M2M4 with ``(S/M2)^2`` floored at ``sig2_floor`` (``line_on`` 0.0)."""
+    mm2 = m2 / mw
+    inv_rms = 1.0 / np.sqrt(mm2)
+    cap = LIMIT * mm2
+    inv_norm = 0.0
+    line_on = 0.0
+    if locked > 0.0 and line_w > 0.0:
+        lm2 = max(line_re * line_re + line_im * line_im,
+                  slow_line_re * slow_line_re + slow_line_im * slow_line_im)
+        lm2 /= line_w * line_w
+        line_var_k = line_alpha / (2.0 - line_alpha)   # variance of an average / per sample
+        spread = (line_p / line_w) * line_var_k * (1.0 - (1.0 - line_w) ** 2) / (line_w * line_w)
+        if lm2 > LINE_SIGNIFICANCE * spread:
+            inv_norm = 1.0 / np.sqrt(lm2)
+            line_on = 1.0
+    if line_on == 0.0:
+        sig2 = 2.0 - (m4 / mw) / (mm2 * mm2)   # (S / M2)^2 from M2M4
+        if sig2 < sig2_floor:
+            sig2 = sig2_floor
+        inv_norm = 1.0 / half_power(np.sqrt(sig2), power)
+    return inv_rms, cap, inv_norm, line_on
+
+
+# --- lock statistic ----------------------------------------------------------------
+
+@njit(cache=True, inline="always")
+def window_verdict(quarters, lock_window, locked, lock_ref, on_table, off_table):
+    """End of a lock window: the statistic (sum of the in-phase quarter sums over
+    ``lock_window`` samples) and the lock rule's verdict on it, ``(metric, locked now)``."""
+    metric = (quarters[0] + quarters[1] + quarters[2] + quarters[3]) / lock_window
+    d1, d2, d3 = null_contrasts(quarters[:4], quarters[4:], int(lock_window), 0, 1)
+    return metric, update_lock(locked > 0.0, metric, d1, d2, d3, lock_ref, on_table, off_table)
+
+
+@njit(cache=True, inline="always")
+def reference_rate(mean_step, free_level, free_trend, nco_rel_re, nco_rel_im, strong, locked,
+                   lock_window, power):
+    """Rate of the lock statistic's reference for the next window from this window's mean NCO
+    step (rad/sample): Holt's linear method on level and trend (full weight at a strong
+    signal). While locked at a strong signal the step's disagreement with the prediction is
+    taken modulo a whole M-domain turn per window; at a weak signal the seen level is the
+    prediction corrected by the turn of the NCO's mean phasor against the reference,
+    ``nco_rel``. Returns ``(level, trend, step change per sample, step)``, rad/sample."""
+    last_level = free_level
+    predicted = free_level + free_trend
+    if strong:
+        seen = mean_step
+        if locked > 0.0:
+            turns = power * lock_window * (mean_step - predicted) / TWO_PI
+            seen -= np.floor(turns + 0.5) * TWO_PI / (power * lock_window)
+    elif nco_rel_re != 0.0 or nco_rel_im != 0.0:
+        seen = predicted + np.arctan2(nco_rel_im, nco_rel_re) / (power * lock_window)
+    else:
+        seen = mean_step
+    level_weight = 1.0 if strong else FREE_LEVEL_WEIGHT
+    trend_weight = 1.0 if strong else FREE_TREND_WEIGHT
+    free_level = predicted + level_weight * (seen - predicted)
+    free_trend += trend_weight * (free_level - last_level - free_trend)
+    free_a = free_trend / lock_window
+    free_f = free_level + free_trend - free_a * 0.5 * (lock_window - 1.0)
+    return free_level, free_trend, free_a, free_f
+
+
+@njit(cache=True, inline="always")
+def turn_reference(free_re, free_im, nco_rel_re, nco_rel_im):
+    """The lock statistic's reference phasor turned onto the NCO's mean M-th power phasor
+    ``nco_rel`` (measured against it) and brought back to unit magnitude."""
+    rel = np.sqrt(nco_rel_re * nco_rel_re + nco_rel_im * nco_rel_im)
+    if rel > 0.0:
+        rr = nco_rel_re / rel
+        ri = nco_rel_im / rel
+        free_re, free_im = free_re * rr - free_im * ri, free_re * ri + free_im * rr
+    mag = np.sqrt(free_re * free_re + free_im * free_im)
+    if mag > 0.0:
+        free_re /= mag
+        free_im /= mag
+    return free_re, free_im
+
+
+# --- cycle slips -------------------------------------------------------------------
+
+@njit(cache=True, inline="always")
+def angle_slip(lp_re, lp_im, psi, psi_last, psi_ref, angle_counts, locked, strong, lp_beta):
+    """Strong-signal slip tracker, one evaluation: unwrap the angle of the low-passed detector
+    phasor ``lp`` (rad, M domain) and compare it with its stable point ``psi_ref``; a departure
+    beyond ANGLE_DEPARTURE while counting, strong and coherent is a slip. Returns
+    ``(psi, psi_last, psi_ref, angle_counts, slip)``, slip -1.0, 0.0 or +1.0 (2*pi/M units;
+    detector angle up = the NCO fell behind = -1)."""
+    a = np.arctan2(lp_im, lp_re)
+    da = a - psi_last
+    if da > np.pi:
+        da -= TWO_PI
+    elif da < -np.pi:
+        da += TWO_PI
+    psi += da
+    psi_last = a
+    dev = psi - psi_ref
+    coherent = lp_re * lp_re + lp_im * lp_im > LP_NOISE_FLOOR * lp_beta
+    if locked > 0.0 and strong:
+        angle_counts = 1.0
+    elif not (strong and coherent):
+        angle_counts = 0.0
+    slip = 0.0
+    if (angle_counts > 0.0 and strong and coherent
+            and (dev > ANGLE_DEPARTURE or dev < -ANGLE_DEPARTURE)):
+        slip = -1.0 if dev > 0.0 else 1.0
+        psi_ref -= slip * TWO_PI
+    elif angle_counts == 0.0:
+        psi_ref = TWO_PI * np.floor(psi / TWO_PI + 0.5)
+    return psi, psi_last, psi_ref, angle_counts, slip
+
+
+@njit(cache=True, inline="always")
+def reference_gains(params, ref_age):
+    """Gains ``(g1, g2, g3)`` of the slip reference ``ref_age`` lock windows after it started:
+    those of the first settling stage not yet over (REF_STAGE_END), else the slow ones."""
+    for k in range(REF_STAGES):
+        if ref_age < REF_STAGE_END[k]:
+            at = P_REF_STAGE_G + 3 * k
+            return params[at], params[at + 1], params[at + 2]
+    return params[P_REF_G1], params[P_REF_G2], params[P_REF_G3]
+
+
+@njit(cache=True, inline="always")
+def reference_slip(ref_r, ref_f, ref_a, slow_re, slow_im, nco_step, g1, g2, g3, strong, acc2,
+                   power):
+    """Weak-signal slip tracker, one sample: the 3rd-order reference (gains ``g``) follows
+    the NCO's step ``nco_step`` (rad/sample); its residual ``ref_r`` (rad) beyond
+    SLIP_DEPARTURE of 2*pi/M is a slip, unless ``strong`` (then the reference restarts on
+    the NCO's step and rate ``acc2``). ``slow`` is ``e^{j M ref_r}``.
+    Returns ``(ref_r, ref_f, ref_a, slow_re, slow_im, slip)``, slip -1.0, 0.0 or +1.0."""
+    slip_step = TWO_PI / power
+    ref_a += g3 * ref_r
+    ref_f += g2 * ref_r + ref_a
+    ref_step = nco_step - g1 * ref_r - ref_f
+    ref_r += ref_step
+    slow_re, slow_im = _rotate(slow_re, slow_im, power * ref_step)
+    slip = 0.0
+    if ref_r > SLIP_DEPARTURE * slip_step or ref_r < -SLIP_DEPARTURE * slip_step:
+        if strong:
+            # the detector angle decides: the loop followed a frequency change the slow
+            # reference had not, so bring the reference along
+            ref_r = 0.0
+            ref_f = nco_step
+            ref_a = acc2
+            slow_re = 1.0
+            slow_im = 0.0
+        else:
+            slip = 1.0 if ref_r > 0.0 else -1.0
+            ref_r -= slip * slip_step
+    return ref_r, ref_f, ref_a, slow_re, slow_im, slip
+
+
+@njit(cache=True, inline="always")
+def _record_slip(slip_at, slip_count, n_slips, n, slip):
+    """Write a declared slip (sample ``n``, signed count) at entry ``n_slips``; returns the
+    new number of entries."""
+    slip_at[n_slips] = n
+    slip_count[n_slips] = int(slip)
+    return n_slips + 1
 
 
 @njit(nogil=True, cache=True, error_model='numpy')
@@ -310,12 +615,6 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     quarter_2 = float(quarter_start(2, window_int))
     quarter_3 = float(quarter_start(3, window_int))
     line_alpha = params[P_LINE_ALPHA]
-    line_var_k = line_alpha / (2.0 - line_alpha)   # variance of an average / per-sample variance
-    slow_g1 = params[P_REF_G1]
-    slow_g2 = params[P_REF_G2]
-    slow_g3 = params[P_REF_G3]
-    slip_step = TWO_PI / power
-    slip_threshold = SLIP_DEPARTURE * slip_step
     lp_beta = params[P_LP_BETA]
     bt = params[P_BT]
     lp_decim = params[P_LP_DECIM]
@@ -323,7 +622,6 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     sig2_floor = params[P_SIG2_FLOOR]
     start_mw = params[P_START_MW]
     e_max = params[P_E_MAX]
-    k_step = k1 + k2 + k3               # d(NCO step)/de while nothing clips or clamps
 
     phase = state[S_PHASE]
     acc1 = state[S_FREQ]
@@ -368,10 +666,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     pm_im = state[S_PM_IM]
     nco_ref = state[S_NCO_REF]
     nco_left = state[S_NCO_LEFT]
-    rf_re = np.cos(nco_ref)
-    rf_im = np.sin(nco_ref)
-    rm_re = np.cos(power * nco_ref)
-    rm_im = np.sin(power * nco_ref)
+    rf_re, rf_im, rm_re, rm_im = phasor_pair(nco_ref, power)
     norm_left = state[S_NORM_LEFT]
     inv_rms = state[S_INV_RMS]
     inv_norm = state[S_INV_NORM]
@@ -404,15 +699,8 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             next_mark += 1
         if nco_left <= 0.0:
             # exact resync every NCO_RESYNC samples of the stream: no drift in phase or magnitude
-            ph_re = np.cos(phase)
-            ph_im = np.sin(phase)
-            pm_re = np.cos(power * phase)
-            pm_im = np.sin(power * phase)
-            nco_ref = acc1
-            rf_re = np.cos(nco_ref)
-            rf_im = np.sin(nco_ref)
-            rm_re = np.cos(power * nco_ref)
-            rm_im = np.sin(power * nco_ref)
+            ph_re, ph_im, pm_re, pm_im, nco_ref, rf_re, rf_im, rm_re, rm_im = nco_resync(
+                phase, acc1, power)
             slow_re = np.cos(power * ref_r)
             slow_im = np.sin(power * ref_r)
             nco_left = NCO_RESYNC
@@ -428,11 +716,6 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
         nco_rel_im += pm_im * free_re - pm_re * free_im
         c = ph_re
         s = ph_im
-        # the next phasors up to this sample's correction (known before the detector)
-        q_re = ph_re * rf_re - ph_im * rf_im
-        q_im = ph_re * rf_im + ph_im * rf_re
-        qm_re = pm_re * rm_re - pm_im * rm_im
-        qm_im = pm_re * rm_im + pm_im * rm_re
         xr = np.float64(x[n].real)
         xi = np.float64(x[n].imag)
         p = xr * xr + xi * xi
@@ -474,27 +757,10 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             m4 += alpha * (p * p - m4)
             mw += alpha * (1.0 - mw)
             if norm_left <= 0.0 or mw < MW_SETTLED:
-                mm2 = m2 / mw
-                inv_rms = 1.0 / np.sqrt(mm2)
-                cap = LIMIT * mm2
+                inv_rms, cap, inv_norm, line_on = normalisation(
+                    m2, m4, mw, locked, line_re, line_im, slow_line_re, slow_line_im, line_w,
+                    line_p, line_alpha, sig2_floor, power)
                 norm_left = NORM_BLOCK
-                # detector gain: the M-th power line itself while locked and clearly measured
-                # (bias-corrected average of d; its variance from the average of |d|^2)
-                line_on = 0.0
-                if locked > 0.0 and line_w > 0.0:
-                    lm2 = max(line_re * line_re + line_im * line_im,
-                              slow_line_re * slow_line_re + slow_line_im * slow_line_im)
-                    lm2 /= line_w * line_w
-                    spread = (line_p / line_w) * line_var_k * (1.0 - (1.0 - line_w) ** 2) / (line_w * line_w)
-                    if lm2 > LINE_SIGNIFICANCE * spread:
-                        inv_norm = 1.0 / np.sqrt(lm2)
-                        line_on = 1.0
-                if line_on == 0.0:
-                    # acquiring: the M2M4 estimate of the signal power, (S/M2)^(M/2)
-                    sig2 = 2.0 - (m4 / mw) / (mm2 * mm2)   # (S / M2)^2 from M2M4
-                    if sig2 < sig2_floor:
-                        sig2 = sig2_floor
-                    inv_norm = 1.0 / half_power(np.sqrt(sig2), power)
             # detector d = (y_lim/sqrt(M2))^M e^{-j M point_angle} = z conj(P^M)
             g = scale * inv_rms
             z = complex(*pair_power(xr * g, xi * g, power)) * rot
@@ -506,42 +772,22 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                 e = e_max
             elif e < -e_max:
                 e = -e_max
-            v = k_step * e + (acc1 + acc2 - nco_ref)   # this sample's step minus nco_ref
-            acc2 += k3 * e
-            acc1 += k2 * e + acc2
-            if acc1 > fmax:
-                acc1 = fmax
-                if acc2 > 0.0:
-                    acc2 = 0.0
-                v = k1 * e + acc1 - nco_ref
-            elif acc1 < fmin:
-                acc1 = fmin
-                if acc2 < 0.0:
-                    acc2 = 0.0
-                v = k1 * e + acc1 - nco_ref
-            last_step = k1 * e
-            phase += last_step
+            last_step, acc1, acc2, v = loop_filter(e, acc1, acc2, nco_ref, k1, k2, k3, fmin, fmax)
             # lock statistic: cos(M arg y) = Re(d)/|d|
             mag = half_power(p * inv_rms * inv_rms, power)   # |d| = (p/M2)^(M/2)
             # the line, measured twice: against the NCO (shrunk by the loop's jitter,
             # E[cos M phi]) and against the slip tracker's slow reference, d e^{j M ref_r}
             # (free of that jitter, but shrunk while the reference itself still settles);
             # neither can exceed the line but by noise, so the larger is used
-            line_re += line_alpha * (d.real - line_re)
-            line_im += line_alpha * (d.imag - line_im)
-            slow_line_re += line_alpha * (d.real * slow_re - d.imag * slow_im - slow_line_re)
-            slow_line_im += line_alpha * (d.real * slow_im + d.imag * slow_re - slow_line_im)
-            zf_re = z.real * free_re + z.imag * free_im
-            zf_im = z.imag * free_re - z.real * free_im
-            line_w += line_alpha * (1.0 - line_w)
-            line_p += line_alpha * (mag * mag - line_p)
+            line_re, line_im, slow_line_re, slow_line_im, line_w, line_p = line_update(
+                line_re, line_im, slow_line_re, slow_line_im, line_w, line_p,
+                d.real, d.imag, slow_re, slow_im, mag, line_alpha)
             if mag > 0.0:
                 inv_mag = 1.0 / mag
-                ur = d.real * inv_mag
                 lock_n += 1.0
-                free_i += zf_re * inv_mag
-                free_q += zf_im * inv_mag
-                lp_re += lp_beta * (ur - lp_re)
+                free_i += (z.real * free_re + z.imag * free_im) * inv_mag
+                free_q += (z.imag * free_re - z.real * free_im) * inv_mag
+                lp_re += lp_beta * (d.real * inv_mag - lp_re)
                 lp_im += lp_beta * (d.imag * inv_mag - lp_im)
             if want_err:
                 e_theta = np.arctan2(d.imag, d.real) * inv_power
@@ -554,16 +800,13 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             freq[n] = acc1 + step_in_freq * last_step
         if want_err:
             err[n] = e_theta
-        phase += acc1
-        # advance the phasors by this sample's step (e^{j nco_ref} is already in q, qm)
-        ph_re, ph_im = _rotate(q_re, q_im, v)
-        pm_re, pm_im = _rotate(qm_re, qm_im, power * v)
-        if phase >= np.pi or phase < -np.pi:
-            phase -= TWO_PI * np.floor((phase + np.pi) / TWO_PI)
+        phase, ph_re, ph_im, pm_re, pm_im = nco_advance(
+            phase, last_step, acc1, v, ph_re, ph_im, pm_re, pm_im, rf_re, rf_im, rm_re, rm_im,
+            power)
 
         # cycle slips. Two trackers, both updated every sample:
         #  - the reference: a slow 3rd-order tracker of the unwrapped NCO phase (noise-proof,
-        #    decides while the signal is weak, metric < STRONG_METRIC);
+        #    decides while the signal is weak);
         #  - the detector angle: the unwrapped angle of the low-passed detector phasor (follows
         #    whatever the loop follows, decides while the signal is strong).
         nco_step = last_step + acc1
@@ -571,59 +814,18 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
         slip_pos += 1.0
         if slip_pos >= lp_decim:
             slip_pos = 0.0
-            a = np.arctan2(lp_im, lp_re)
-            da = a - psi_last
-            if da > np.pi:
-                da -= TWO_PI
-            elif da < -np.pi:
-                da += TWO_PI
-            psi += da
-            psi_last = a
-            dev = psi - psi_ref
-            coherent = lp_re * lp_re + lp_im * lp_im > LP_NOISE_FLOOR * lp_beta
-            if locked > 0.0 and strong:
-                angle_counts = 1.0
-            elif not (strong and coherent):
-                angle_counts = 0.0
-            if (angle_counts > 0.0 and strong and coherent
-                    and (dev > ANGLE_DEPARTURE or dev < -ANGLE_DEPARTURE)):
-                step = -1.0 if dev > 0.0 else 1.0     # detector angle up = NCO fell behind
-                psi_ref -= step * TWO_PI
-                slips += step
-                slip_at[n_slips] = n
-                slip_count[n_slips] = int(step)
-                n_slips += 1
-            elif angle_counts == 0.0:
-                psi_ref = TWO_PI * np.floor(psi / TWO_PI + 0.5)
+            psi, psi_last, psi_ref, angle_counts, slip = angle_slip(
+                lp_re, lp_im, psi, psi_last, psi_ref, angle_counts, locked, strong, lp_beta)
+            if slip != 0.0:
+                slips += slip
+                n_slips = _record_slip(slip_at, slip_count, n_slips, n, slip)
         if locked > 0.0:
-            g1, g2, g3 = slow_g1, slow_g2, slow_g3
-            for k in range(REF_STAGES):
-                if ref_age < REF_STAGE_END[k]:
-                    g1 = params[P_REF_STAGE_G + 3 * k]
-                    g2 = params[P_REF_STAGE_G + 3 * k + 1]
-                    g3 = params[P_REF_STAGE_G + 3 * k + 2]
-                    break
-            ref_a += g3 * ref_r
-            ref_f += g2 * ref_r + ref_a
-            ref_step = nco_step - g1 * ref_r - ref_f
-            ref_r += ref_step
-            slow_re, slow_im = _rotate(slow_re, slow_im, power * ref_step)
-            if ref_r > slip_threshold or ref_r < -slip_threshold:
-                if strong:
-                    # the detector angle decides: the loop followed a frequency change
-                    # the slow reference had not, so bring the reference along
-                    ref_r = 0.0
-                    ref_f = acc1 + last_step
-                    ref_a = acc2
-                    slow_re = 1.0
-                    slow_im = 0.0
-                else:
-                    step = 1.0 if ref_r > 0.0 else -1.0
-                    ref_r -= step * slip_step
-                    slips += step
-                    slip_at[n_slips] = n
-                    slip_count[n_slips] = int(step)
-                    n_slips += 1
+            g1, g2, g3 = reference_gains(params, ref_age)
+            ref_r, ref_f, ref_a, slow_re, slow_im, slip = reference_slip(
+                ref_r, ref_f, ref_a, slow_re, slow_im, nco_step, g1, g2, g3, strong, acc2, power)
+            if slip != 0.0:
+                slips += slip
+                n_slips = _record_slip(slip_at, slip_count, n_slips, n, slip)
 
         # lock indicator: decide at the end of each window
         lock_pos += 1.0
@@ -640,50 +842,16 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             mean_step = win_steps / lock_window
             slope = (mean_step - prev_step) / lock_window
             prev_step = mean_step
-            # the reference's rate: a smoothed level and trend of the NCO's mean step (Holt's
-            # linear method) at a weak signal, the last window's mean step and its change at a
-            # strong one (no noise to smooth, and it must follow fast dynamics); while locked,
-            # the step's disagreement with the prediction is taken modulo a whole M-domain
-            # turn per window, so that a cycle slip (2 pi / M of NCO phase) does not turn it
-            last_level = free_level
-            predicted = free_level + free_trend
-            if strong:
-                seen = mean_step
-                if locked > 0.0:
-                    turns = power * lock_window * (mean_step - predicted) / TWO_PI
-                    seen -= np.floor(turns + 0.5) * TWO_PI / (power * lock_window)
-            elif nco_rel_re != 0.0 or nco_rel_im != 0.0:
-                # weak signal: the NCO's mean M-th power phasor against the reference turns by
-                # about one window's worth of the rate error; it is an average over the
-                # window (little jitter) and blind to slips (2 pi in the M domain)
-                seen = predicted + np.arctan2(nco_rel_im, nco_rel_re) / (power * lock_window)
-            else:
-                seen = mean_step
-            level_weight = 1.0 if strong else FREE_LEVEL_WEIGHT
-            trend_weight = 1.0 if strong else FREE_TREND_WEIGHT
-            free_level = predicted + level_weight * (seen - predicted)
-            free_trend += trend_weight * (free_level - last_level - free_trend)
-            free_a = free_trend / lock_window
-            free_f = free_level + free_trend - free_a * 0.5 * (lock_window - 1.0)
-            # and its phase: turned onto the NCO's mean M-th power phasor over the window (an
-            # average, so the NCO's jitter at one instant does not move it)
-            rel = np.sqrt(nco_rel_re * nco_rel_re + nco_rel_im * nco_rel_im)
-            if rel > 0.0:
-                rr = nco_rel_re / rel
-                ri = nco_rel_im / rel
-                free_re, free_im = free_re * rr - free_im * ri, free_re * ri + free_im * rr
-            mag = np.sqrt(free_re * free_re + free_im * free_im)
-            if mag > 0.0:
-                free_re /= mag
-                free_im /= mag
+            free_level, free_trend, free_a, free_f = reference_rate(
+                mean_step, free_level, free_trend, nco_rel_re, nco_rel_im, strong, locked,
+                lock_window, power)
+            free_re, free_im = turn_reference(free_re, free_im, nco_rel_re, nco_rel_im)
             nco_rel_re = 0.0
             nco_rel_im = 0.0
             win_steps = 0.0
             if lock_n >= 0.5 * lock_window:
-                metric = (quarters[0] + quarters[1] + quarters[2] + quarters[3]) / lock_window
-                d1, d2, d3 = null_contrasts(quarters[:4], quarters[4:], window_int, 0, 1)
-                now = update_lock(locked > 0.0, metric, d1, d2, d3,
-                                  lock_ref, on_table, off_table)
+                metric, now = window_verdict(quarters, lock_window, locked, lock_ref,
+                                             on_table, off_table)
                 if locked > 0.0:
                     locked = 1.0 if now else 0.0
                 elif now:

@@ -220,20 +220,7 @@ class mth_power_loop_cc(gr.sync_block):
 
     def _set_nco_frequency(self, rad_per_sample):
         """Re-steer the NCO (work() thread only); the slip tracker follows, so it is not a slip."""
-        st = self._state
-        st[K.S_FREQ] = rad_per_sample
-        st[K.S_ACC2] = 0.0
-        st[K.S_REF_R] = 0.0
-        st[K.S_SLOW_RE], st[K.S_SLOW_IM] = 1.0, 0.0
-        st[K.S_ANGLE_COUNTS] = 0.0               # the detector angle jumps with the NCO
-        st[K.S_REF_F] = rad_per_sample
-        st[K.S_REF_A] = 0.0
-        st[K.S_WIN_STEPS] = 0.0
-        st[K.S_PREV_STEP] = rad_per_sample
-        st[K.S_FREE_F] = rad_per_sample          # the lock statistic's reference follows too
-        st[K.S_FREE_A] = 0.0
-        st[K.S_FREE_LEVEL] = rad_per_sample
-        st[K.S_FREE_TREND] = 0.0
+        K.steer_nco(self._state, rad_per_sample)
 
     def _steer(self, sample):
         """End of an acquisition block: if unlocked, estimate the offset from z^M and steer.

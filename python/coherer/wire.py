@@ -115,7 +115,6 @@ def plan_from_dict(d):
 def settings_to_dict(settings):
     """A :class:`coherer.receiver.ReceiverSettings` as a plain dict (the inverse of
     :func:`settings_from_dict`)."""
-    from dataclasses import asdict
     return asdict(settings)
 
 

@@ -211,7 +211,7 @@ def test_state_matrices_match_closed_loop_transfer_function(order, bt):
     # scipy.signal.ss2tf of x[n+1] = (I + Delta) x[n] + B theta[n], theta^ = x_0, against the
     # polynomial closed loop z^-1 N(u) / (u^d + z^-1 N(u)) (module docstring); rel 1e-9
     g = design.loop_gains(order, bt, 0.707)
-    delta, b = design.loop_state_matrices(g)
+    delta, b, _ = design.loop_state_matrices(g)
     c = np.zeros((1, order))
     c[0, 0] = 1.0
     num, den = signal.ss2tf(np.eye(order) + delta, b[:, None], c, np.zeros((1, 1)))

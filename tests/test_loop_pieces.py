@@ -12,6 +12,7 @@ from scipy.signal import lfilter
 
 from gnuradio.coherer import _loop_kernel as K
 from gnuradio.coherer import design, lockstat
+from gnuradio.coherer.mth_power_loop_cc import _tracker_gains
 
 
 def wrap(a):
@@ -155,22 +156,27 @@ def test_nco_pieces_follow_the_summed_phase(power):
 
 # --- loop filter ------------------------------------------------------------------------
 
+@pytest.mark.parametrize("block", [1, 8])
 @pytest.mark.parametrize("order", [1, 2, 3])
-def test_loop_filter_is_the_published_transfer_function(order):
+def test_loop_filter_is_the_published_transfer_function(order, block):
     """The NCO step K1 e + acc1 against scipy.signal.lfilter of the loop filter
     F(z) = K1 + K2/(1 - z^-1) + K3/(1 - z^-1)^2 (REFERENCES 1.2, 1.3: proportional plus
     integral, rectangular integrators), gains from design.textbook_gains at B_L T = 0.02,
-    seeded detector outputs; float64 agreement to 1e-12 of the largest step."""
+    seeded detector outputs; float64 agreement to 1e-12 of the largest step. Once per block
+    of L samples (REFERENCES 1.4) the same filter acts with the gains (L K1, L K2, L^2 K3):
+    the registers move by what L samples of the same error would move them."""
     k1, k2, k3 = design.textbook_gains(order, 0.02, 0.707)
     rng = np.random.default_rng(10 + order)
     e = rng.standard_normal(3000)
     acc1 = acc2 = 0.0
     steps = np.empty_like(e)
     for i, ei in enumerate(e):
-        prop, acc1, acc2, v = K.loop_filter(ei, acc1, acc2, 0.25, k1, k2, k3, -np.inf, np.inf)
+        prop, acc1, acc2, v = K.loop_filter(ei, acc1, acc2, 0.25, k1, k2, k3, -np.inf, np.inf,
+                                            block)
         steps[i] = prop + acc1
-        assert prop == k1 * ei
+        assert prop == block * k1 * ei
         assert abs(v - (steps[i] - 0.25)) <= 1e-14 * (1 + abs(steps[i]))
+    k1, k2, k3 = block * k1, block * k2, block * block * k3
     u = np.array([1.0, -1.0])                      # 1 - z^-1
     b = {1: [k1], 2: k1 * u + [k2, 0.0], 3: k1 * np.convolve(u, u) + np.r_[k2 * u, 0] + [k3, 0, 0]}
     a = {1: [1.0], 2: u, 3: np.convolve(u, u)}
@@ -185,13 +191,13 @@ def test_loop_filter_holds_the_frequency_register_at_its_limits():
     acc1 = acc2 = 0.0
     seen = []
     for _ in range(5):
-        _, acc1, acc2, v = K.loop_filter(1.0, acc1, acc2, 0.0, 0.0, 0.1, 0.0, -0.35, 0.35)
+        _, acc1, acc2, v = K.loop_filter(1.0, acc1, acc2, 0.0, 0.0, 0.1, 0.0, -0.35, 0.35, 1)
         seen.append(acc1)
     np.testing.assert_allclose(seen, [0.1, 0.2, 0.30000000000000004, 0.35, 0.35], rtol=1e-15)
     assert v == 0.35
-    _, acc1, acc2, _ = K.loop_filter(1.0, 0.3, 0.2, 0.0, 0.0, 0.0, 0.01, -0.35, 0.35)
+    _, acc1, acc2, _ = K.loop_filter(1.0, 0.3, 0.2, 0.0, 0.0, 0.0, 0.01, -0.35, 0.35, 1)
     assert (acc1, acc2) == (0.35, 0.0)
-    _, acc1, acc2, _ = K.loop_filter(-1.0, -0.3, -0.2, 0.0, 0.0, 0.0, 0.01, -0.35, 0.35)
+    _, acc1, acc2, _ = K.loop_filter(-1.0, -0.3, -0.2, 0.0, 0.0, 0.0, 0.01, -0.35, 0.35, 1)
     assert (acc1, acc2) == (-0.35, 0.0)
 
 
@@ -210,7 +216,7 @@ def run_line(d, slow, alpha):
     """line_update over the detector samples ``d`` with the slow-reference phasor ``slow``."""
     line = (0.0,) * 6
     for di in d:
-        line = K.line_update(*line, di.real, di.imag, slow.real, slow.imag, abs(di), alpha)
+        line = K.line_update(*line, di.real, di.imag, slow.real, slow.imag, abs(di) ** 2, alpha)
     return line
 
 
@@ -396,23 +402,27 @@ def test_reference_gains_narrow_in_stages():
         assert K.reference_gains(p, age) == tuple(p[at:at + 3]), age
 
 
+@pytest.mark.parametrize("block", [1, 4])
 @pytest.mark.parametrize("power", [2, 4])
-def test_reference_tracker_counts_steps_of_two_pi_over_m(power):
+def test_reference_tracker_counts_steps_of_two_pi_over_m(power, block):
     """The NCO phase on a frequency ramp, with steps of +2 pi/M at 3000 and 9000 and -2 pi/M at
     15000 samples: the slow 3rd-order reference (no steady error to a ramp, REFERENCES 2.1)
     follows the ramp and declares exactly those slips; at a strong signal it declares none
-    and restarts on the NCO instead."""
-    p = reference_params(2e-3)
-    g = tuple(p[K.P_REF_G1:K.P_REF_G3 + 1])
+    and restarts on the NCO instead. Updated once per block of L samples it sees the NCO's
+    advance over each block, with the block's textbook gains in its per-sample units (the
+    loop block's own conversion)."""
+    bt = 2e-3
+    g = _tracker_gains(bt, block)
     n = 20000
     steps = 1e-3 + 1e-8 * np.arange(n)
     for at, sign in ((3000, 1), (9000, 1), (15000, -1)):
         steps[at] += sign * 2 * np.pi / power
+    steps = steps.reshape(-1, block).sum(axis=1)
     for strong, want in ((False, [1.0, 1.0, -1.0]), (True, [])):
         ref = (0.0, 1e-3, 0.0, 1.0, 0.0)
         slips = []
         for s in steps:
-            *ref, slip = K.reference_slip(*ref, s, *g, strong, 0.0, power)
+            *ref, slip = K.reference_slip(*ref, s, *g, strong, 0.0, power, block)
             if slip:
                 slips.append(slip)
         assert slips == want
@@ -420,3 +430,122 @@ def test_reference_tracker_counts_steps_of_two_pi_over_m(power):
         assert abs(ref_r) < 0.05
         np.testing.assert_allclose(complex(slow_re, slow_im), np.exp(1j * power * ref_r),
                                    rtol=0, atol=1e-9)
+
+
+# --- update blocks ----------------------------------------------------------------------
+
+def block_tables_reference(block, theta, freq, free_theta, free_f, free_a, power):
+    """The NCO over a block by numpy's exp of the phases: theta + t freq, and the lock
+    reference's M-domain phase M free_theta + t M (free_f + free_a (L - 1) / 2)."""
+    t = np.arange(block)
+    p = np.exp(1j * (theta + t * freq))
+    free = np.exp(1j * (power * free_theta + t * power * (free_f + free_a * 0.5 * (block - 1))))
+    return p, p ** power, p ** power * np.conj(free)
+
+
+@pytest.mark.parametrize("power", [1, 2, 8])
+def test_block_tables_are_the_nco_at_one_frequency(power):
+    """block_tables against np.exp of the phases (from the definition): the NCO phasor and its
+    M-th power at the block's one frequency, and the NCO against the lock reference; to 1e-13
+    (at most 64 complex products of unit phasors)."""
+    block, theta, nco_ref, freq, free_theta, free_f, free_a = 64, 0.3, 0.011, 0.0113, -1.1, 0.0109, 1e-7
+    tabs = np.empty((6, K.MAX_BLOCK))
+    rf, rm = np.exp(1j * nco_ref), np.exp(1j * power * nco_ref)
+    ph, free = np.exp(1j * theta), np.exp(1j * power * free_theta)
+    nxt = K.block_tables(block, ph.real, ph.imag, (ph ** power).real, (ph ** power).imag,
+                         free.real, free.imag, freq, nco_ref, rf.real, rf.imag, rm.real, rm.imag,
+                         free_f, free_a, power, tabs)
+    p, pm, rel = block_tables_reference(block, theta, freq, free_theta, free_f, free_a, power)
+    for got, want in ((tabs[0] + 1j * tabs[1], p), (tabs[2] + 1j * tabs[3], pm),
+                      (tabs[4] + 1j * tabs[5], rel)):
+        np.testing.assert_allclose(got[:block], want, rtol=0, atol=1e-13)
+    want_next = np.exp(1j * (power * free_theta + block * power * (free_f + free_a * 0.5 * (block - 1))))
+    assert abs(complex(*nxt) - want_next) < 1e-13
+
+
+def test_block_sums_are_the_sums_of_the_detector():
+    """block_sums on a QPSK block with a gap (NaN), a zero and a spike beyond the limiter,
+    against the same quantities computed with numpy from their definitions: the limited
+    sample x min(1, sqrt(cap/p)), d = (x_lim / rms)^M e^{-j M point_angle} conj(P^M), the
+    clipped normalised error, d/|d|, the lock projection (d/|d|) rel and the position-weighted
+    moments; to 1e-12 relative."""
+    rng = np.random.default_rng(5)
+    power, block, rms, cap, e_gain, e_max = 4, 32, 1.3, 20.0, 0.7, 0.5
+    x, _ = qpsk_detector(rng, block, 10.0, 0.2)
+    x = (x * rms).astype(np.complex64)
+    x[3] = np.nan
+    x[7] = 0.0
+    x[11] = 9.0 * rms                                # p = 81 rms^2 > cap
+    pm = np.exp(1j * rng.uniform(-np.pi, np.pi, block))
+    rel = np.exp(1j * rng.uniform(-np.pi, np.pi, block))
+    tabs = np.zeros((6, K.MAX_BLOCK))
+    tabs[2, :block], tabs[3, :block] = pm.real, pm.imag
+    tabs[4, :block], tabs[5, :block] = rel.real, rel.imag
+    alpha = 1e-3
+    wm, wf = np.zeros(K.MAX_BLOCK), np.zeros(K.MAX_BLOCK)
+    K.block_coefficients(block, alpha, 1e-3, 1e-2, wm, wf)
+    rot = np.exp(-1j * power * np.pi / 4)
+    got = K.block_sums(x.view(np.float32), tabs, wm, wf, 1.0 / rms, cap, e_gain, e_max,
+                       rot.real, rot.imag, power)
+
+    xd = x.astype(np.complex128)
+    ok = np.isfinite(xd) & (xd != 0)
+    xd = np.where(ok, xd, 0)
+    p = np.abs(xd) ** 2
+    scale = np.sqrt(np.minimum(1.0, cap / np.where(ok, p, 1.0)))
+    p_lim = np.minimum(p, cap)
+    d = np.where(ok, (xd * scale / rms) ** power * rot * np.conj(pm), 0)
+    mag = np.abs(d)
+    u = np.where(mag > 0, d / np.where(mag > 0, mag, 1), 0)
+    w = np.where(ok, wm[:block], 0)
+    want = (np.sum(np.clip(d.imag * e_gain, -e_max, e_max)), d.real.sum(), d.imag.sum(),
+            u.real.sum(), u.imag.sum(), np.sum(mag ** 2), np.sum(u * rel).real,
+            np.sum(u * rel).imag, rel.real.sum(), rel.imag.sum(), ok.sum(), np.sum(mag > 0),
+            p_lim.sum(), np.sum(w * p_lim), np.sum(w * p_lim ** 2), w.sum(),
+            np.sum(np.where(ok, wf[:block], 0) * p_lim))
+    np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12)
+
+
+def test_block_coefficients_give_the_per_sample_averages():
+    """A block's position-weighted sum plus the old average times the block decay equals the
+    per-sample exponential average m += alpha (p - m) run over the block (its definition),
+    and the block coefficient of an average of block means is 1 - (1 - a)^L."""
+    rng = np.random.default_rng(2)
+    alpha, block = 3e-3, 16
+    wm, wf = np.zeros(K.MAX_BLOCK), np.zeros(K.MAX_BLOCK)
+    decay_m, decay_f, line_b, lp_b = K.block_coefficients(block, alpha, 0.01, 0.02, wm, wf)
+    p = rng.exponential(size=block)
+    for a, decay, w in ((alpha, decay_m, wm), (K.FAST_ALPHA, decay_f, wf)):
+        m = 0.7
+        for pi in p:
+            m += a * (pi - m)
+        assert decay * 0.7 + np.dot(w[:block], p) == pytest.approx(m, rel=1e-13)
+    assert line_b == pytest.approx(1 - 0.99 ** block, rel=1e-14)
+    assert lp_b == pytest.approx(1 - 0.98 ** block, rel=1e-14)
+
+
+def test_block_length_keeps_blocks_inside_the_window_quarters():
+    """A block starting at a position not a multiple of the wanted length is halved until it
+    is, so no block straddles a quarter end (multiples of the window / 4)."""
+    assert K.block_length(16, 0.0) == 16
+    assert K.block_length(16, 48.0) == 16
+    assert K.block_length(16, 40.0) == 8
+    assert K.block_length(16, 36.0) == 4
+    assert K.block_length(16, 37.0) == 1
+    for pos in range(0, 1024, 3):
+        length = K.block_length(64, float(pos))
+        assert pos % length == 0 and (pos // 256) == ((pos + length - 1) // 256)
+
+
+def test_steering_waits_for_a_block_boundary():
+    """The NCO runs at one frequency over an update block: steer_nco refuses within one, and
+    block_remaining says how many samples are left."""
+    st = K.new_state()
+    st[K.S_BLOCK_LEN], st[K.S_BLOCK_POS] = 16.0, 5.0
+    assert K.block_remaining(st) == 11
+    with pytest.raises(ValueError, match="between update blocks"):
+        K.steer_nco(st, 0.01)
+    st[K.S_BLOCK_POS] = 0.0
+    assert K.block_remaining(st) == 0
+    K.steer_nco(st, 0.01)
+    assert st[K.S_FREQ] == 0.01

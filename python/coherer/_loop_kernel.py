@@ -111,9 +111,9 @@ magnitude can drift (worst case between resyncs: about 1e-12). The detector is
 ``d = z conj(P^M)`` with ``z = (x_lim / sqrt(M2))^M e^{-j M point_angle}``, which
 does not depend on the NCO. The normalisation (1/sqrt(M2), (S/M2)^(M/2), limiter
 level) is recomputed from the moments every ``NORM_BLOCK`` samples once they have
-settled (every sample before): the moments are exponential averages over
+settled (every update block before): the moments are exponential averages over
 thousands of samples, so in between they move by about NORM_BLOCK / (averaging
-length), 0.1 % for 16384. All of this is state, so results do not depend on how
+length), 0.4 % for 16384. All of this is state, so results do not depend on how
 the stream is chunked.
 """
 
@@ -121,13 +121,15 @@ import numpy as np
 from numba import njit
 
 from ._numeric import half_power, pair_power
-from .lockstat import null_contrasts, quarter_start, update_lock
+from .design import MAX_UPDATE_BLOCK
+from .lockstat import _SIMD_MATH, null_contrasts, quarter_start, update_lock
 
 # state[] and params[] layouts ------------------------------------------------------
 # Each layout is one list of (name, slots, meaning); the index of field ``name`` is the
 # module constant ``S_NAME`` (state) or ``P_NAME`` (params), generated below, so the
 # kernels see plain global ints and nothing is numbered by hand.
 REF_STAGES = 3   # settling stages of the slip reference (REF_STAGE_END)
+MAX_BLOCK = MAX_UPDATE_BLOCK   # longest update block, samples (a power of two dividing NCO_RESYNC)
 
 STATE_FIELDS = (
     ("phase", 1, "theta^, rad, wrapped to [-pi, pi)"),
@@ -195,6 +197,11 @@ STATE_FIELDS = (
     ("slow_line_im", 1, "... imaginary part"),
     ("angle_counts", 1, "1.0 while the detector angle counts slips: from lock on, and after an "
                         "unlock for as long as the detector phasor stays coherent at a strong signal"),
+    ("block_len", 1, "length of the update block in progress, samples (fixed at its start)"),
+    ("block_pos", 1, "samples of that block processed so far"),
+    ("block_open", 1, "1.0 if the loop is closed in this block (the moments had settled at its start)"),
+    ("held", 2 * MAX_BLOCK, "the block's input samples so far, interleaved I/Q (its sums are taken once "
+                     "the block is whole, so they do not depend on where calls end)"),
 )
 
 PARAMS_FIELDS = (
@@ -219,6 +226,7 @@ PARAMS_FIELDS = (
     ("lp_decim", 1, "its angle is unwrapped every this many samples"),
     ("bt", 1, "B_L T of the loop (for the loop-SNR estimate)"),
     ("line_alpha", 1, "averaging coefficient of the line estimate"),
+    ("block", 1, "update block length, samples (a power of two dividing the lock quarter)"),
 )
 
 
@@ -241,7 +249,7 @@ LEVEL_STEP = 4.0                   # a level change of 6 dB restarts the moment 
 TWO_PI = 2.0 * np.pi
 NCO_RESYNC = 256                   # phasors recomputed exactly from the phase every this many samples
 SMALL_ANGLE = 2.0 ** -5            # series rotation for |angle| <= this (error < 6e-15 per step)
-NORM_BLOCK = 16                    # detector normalisation recomputed every this many samples...
+NORM_BLOCK = 64                    # detector normalisation recomputed every this many samples...
 MW_SETTLED = 0.5                   # ...and every sample while the moment weight is below this
 SLIP_DEPARTURE = 0.75              # fraction of 2*pi/M that declares a slip
 #: the slip reference narrows in stages after lock: stage k lasts until this many windows
@@ -277,7 +285,10 @@ def state_dict(state):
 def steer_nco(state, freq):
     """Re-steer the NCO to ``freq`` rad/sample (phase kept): the frequency register is set and
     the rate register cleared; the slip trackers and the lock statistic's reference rate move
-    with it, so the jump is not a slip."""
+    with it, so the jump is not a slip. An update block runs at one frequency, so this is
+    for a block boundary (:func:`block_remaining` 0); ``ValueError`` within a block."""
+    if state[S_BLOCK_POS] > 0.0:
+        raise ValueError("the NCO can only be re-steered between update blocks")
     state[S_FREQ] = freq
     state[S_ACC2] = 0.0
     state[S_REF_R] = 0.0
@@ -292,6 +303,12 @@ def steer_nco(state, freq):
     state[S_FREE_A] = 0.0
     state[S_FREE_LEVEL] = freq
     state[S_FREE_TREND] = 0.0
+
+
+def block_remaining(state):
+    """Samples left in the update block in progress (0 at a block boundary)."""
+    pos = int(state[S_BLOCK_POS])
+    return int(state[S_BLOCK_LEN]) - pos if pos > 0 else 0
 
 
 @njit(cache=True)
@@ -367,41 +384,46 @@ def nco_advance(phase, step, freq, v, ph_re, ph_im, pm_re, pm_im, rf_re, rf_im, 
 # --- loop filter -------------------------------------------------------------------
 
 @njit(cache=True, inline="always")
-def loop_filter(e, acc1, acc2, nco_ref, k1, k2, k3, fmin, fmax):
-    """Order 1-3 loop filter on the normalised detector output ``e``:
-    ``acc2 += K3 e; acc1 += K2 e + acc2`` with ``acc1`` held in [fmin, fmax] rad/sample
-    (``acc2`` then not pushing further). Returns ``(K1 e, acc1, acc2, v)``, rad/sample,
-    where ``K1 e + acc1`` is this sample's NCO step and ``v`` that step minus ``nco_ref``."""
-    v = (k1 + k2 + k3) * e + (acc1 + acc2 - nco_ref)
-    acc2 += k3 * e
-    acc1 += k2 * e + acc2
+def loop_filter(e, acc1, acc2, nco_ref, k1, k2, k3, fmin, fmax, block):
+    """Order 1-3 loop filter, once per update block of ``block`` samples, on the block's mean
+    normalised detector output ``e``: ``acc2 += L K3 e; acc1 += L K2 e + L acc2`` with ``acc1``
+    held in [fmin, fmax] rad/sample (``acc2`` then not pushing further); ``k1..k3`` are the
+    per-sample gains, ``L = block``. Returns ``(L K1 e, acc1, acc2, v)``: the proportional
+    phase kick (rad), the registers (rad/sample, rad/sample^2), and ``v``, the step from the
+    block's last sample to the next block's first (kick + acc1) minus ``nco_ref``, rad."""
+    b1 = block * k1
+    b2 = block * k2
+    b3 = block * k3
+    v = (b1 + b2 + block * b3) * e + (acc1 + block * acc2 - nco_ref)
+    acc2 += b3 * e
+    acc1 += b2 * e + block * acc2
     if acc1 > fmax:
         acc1 = fmax
         if acc2 > 0.0:
             acc2 = 0.0
-        v = k1 * e + acc1 - nco_ref
+        v = b1 * e + acc1 - nco_ref
     elif acc1 < fmin:
         acc1 = fmin
         if acc2 < 0.0:
             acc2 = 0.0
-        v = k1 * e + acc1 - nco_ref
-    return k1 * e, acc1, acc2, v
+        v = b1 * e + acc1 - nco_ref
+    return b1 * e, acc1, acc2, v
 
 
 # --- line and detector normalisation -----------------------------------------------
 
 @njit(cache=True, inline="always")
 def line_update(line_re, line_im, slow_line_re, slow_line_im, line_w, line_p,
-                d_re, d_im, slow_re, slow_im, mag, line_alpha):
-    """One sample of the M-th power line averages: of the detector ``d`` (against the NCO), of
-    ``d e^{j M ref_r}`` (against the slow reference ``slow``), of 1 (the weight) and of
-    ``|d|^2 = mag^2``. Returns the six updated averages in the order given."""
+                d_re, d_im, slow_re, slow_im, mag2, line_alpha):
+    """One step of the M-th power line averages (coefficient ``line_alpha``): of the detector
+    ``d`` (against the NCO), of ``d e^{j M ref_r}`` (against the slow reference ``slow``), of 1
+    (the weight) and of ``|d|^2 = mag2``. Returns the six updated averages in the order given."""
     line_re += line_alpha * (d_re - line_re)
     line_im += line_alpha * (d_im - line_im)
     slow_line_re += line_alpha * (d_re * slow_re - d_im * slow_im - slow_line_re)
     slow_line_im += line_alpha * (d_re * slow_im + d_im * slow_re - slow_line_im)
     line_w += line_alpha * (1.0 - line_w)
-    line_p += line_alpha * (mag * mag - line_p)
+    line_p += line_alpha * (mag2 - line_p)
     return line_re, line_im, slow_line_re, slow_line_im, line_w, line_p
 
 
@@ -537,16 +559,17 @@ def reference_gains(params, ref_age):
 
 @njit(cache=True, inline="always")
 def reference_slip(ref_r, ref_f, ref_a, slow_re, slow_im, nco_step, g1, g2, g3, strong, acc2,
-                   power):
-    """Weak-signal slip tracker, one sample: the 3rd-order reference (gains ``g``) follows
-    the NCO's step ``nco_step`` (rad/sample); its residual ``ref_r`` (rad) beyond
-    SLIP_DEPARTURE of 2*pi/M is a slip, unless ``strong`` (then the reference restarts on
-    the NCO's step and rate ``acc2``). ``slow`` is ``e^{j M ref_r}``.
+                   power, block):
+    """Weak-signal slip tracker, one update block of ``block`` samples: the 3rd-order
+    reference (gains ``g``, per block) follows the NCO's advance over the block ``nco_step``
+    (rad); its residual ``ref_r`` (rad) beyond SLIP_DEPARTURE of 2*pi/M is a slip, unless
+    ``strong`` (then the reference restarts on the NCO's step and rate ``acc2``). ``ref_f`` is
+    in rad/sample, ``ref_a`` in rad/sample^2; ``slow`` is ``e^{j M ref_r}``.
     Returns ``(ref_r, ref_f, ref_a, slow_re, slow_im, slip)``, slip -1.0, 0.0 or +1.0."""
     slip_step = TWO_PI / power
     ref_a += g3 * ref_r
-    ref_f += g2 * ref_r + ref_a
-    ref_step = nco_step - g1 * ref_r - ref_f
+    ref_f += g2 * ref_r + block * ref_a
+    ref_step = nco_step - g1 * ref_r - block * ref_f
     ref_r += ref_step
     slow_re, slow_im = _rotate(slow_re, slow_im, power * ref_step)
     slip = 0.0
@@ -555,7 +578,7 @@ def reference_slip(ref_r, ref_f, ref_a, slow_re, slow_im, nco_step, g1, g2, g3, 
             # the detector angle decides: the loop followed a frequency change the slow
             # reference had not, so bring the reference along
             ref_r = 0.0
-            ref_f = nco_step
+            ref_f = nco_step / block
             ref_a = acc2
             slow_re = 1.0
             slow_im = 0.0
@@ -572,6 +595,191 @@ def _record_slip(slip_at, slip_count, n_slips, n, slip):
     slip_at[n_slips] = n
     slip_count[n_slips] = int(slip)
     return n_slips + 1
+
+
+@njit(cache=True)
+def block_coefficients(block, alpha, line_alpha, lp_beta, weights_m, weights_f):
+    """Per-block forms of the per-sample exponential averages for a block of ``block``
+    samples: ``weights_m[t] = alpha (1 - alpha)^(block - 1 - t)`` (moments) and the same with
+    FAST_ALPHA in ``weights_f``, so that a block's position-weighted sum plus the old value
+    times the decay is the per-sample average after the block. Returns ``(moment decay,
+    level-step decay, line coefficient, low-pass coefficient)``: ``(1 - a)^block`` for the
+    first two, ``1 - (1 - a)^block`` for the others (each averages the block's mean)."""
+    for t in range(block):
+        weights_m[t] = alpha * (1.0 - alpha) ** (block - 1 - t)
+        weights_f[t] = FAST_ALPHA * (1.0 - FAST_ALPHA) ** (block - 1 - t)
+    if block == 1:
+        return 1.0 - alpha, 1.0 - FAST_ALPHA, line_alpha, lp_beta
+    return ((1.0 - alpha) ** block, (1.0 - FAST_ALPHA) ** block,
+            1.0 - (1.0 - line_alpha) ** block, 1.0 - (1.0 - lp_beta) ** block)
+
+
+@njit(cache=True)
+def block_tables(block, ph_re, ph_im, pm_re, pm_im, free_re, free_im, acc1, nco_ref, rf_re, rf_im,
+                 rm_re, rm_im, free_f, free_a, power, tabs):
+    """The NCO over one update block at the frequency register ``acc1`` (rad/sample) from
+    its phasors at the block start: ``tabs[0:2, t] = e^{j theta^}``, ``tabs[2:4, t] =
+    e^{j M theta^}`` and ``tabs[4:6, t]`` that against the lock statistic's reference (which
+    turns at its mean step over the block), t = 0..block-1. Returns the reference phasor at
+    the next block start."""
+    v = acc1 - nco_ref
+    w_re, w_im = _rotate(rf_re, rf_im, v)
+    wm_re, wm_im = _rotate(rm_re, rm_im, power * v)
+    wf_re, wf_im = _rotate(1.0, 0.0, power * (free_f + free_a * 0.5 * (block - 1)))
+    a_re, a_im = ph_re, ph_im
+    b_re, b_im = pm_re, pm_im
+    c_re, c_im = free_re, free_im
+    for t in range(block):
+        tabs[0, t] = a_re
+        tabs[1, t] = a_im
+        tabs[2, t] = b_re
+        tabs[3, t] = b_im
+        tabs[4, t] = b_re * c_re + b_im * c_im
+        tabs[5, t] = b_im * c_re - b_re * c_im
+        a_re, a_im = a_re * w_re - a_im * w_im, a_re * w_im + a_im * w_re
+        b_re, b_im = b_re * wm_re - b_im * wm_im, b_re * wm_im + b_im * wm_re
+        c_re, c_im = c_re * wf_re - c_im * wf_im, c_re * wf_im + c_im * wf_re
+    return c_re, c_im
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def detector(xr, xi, g_rms, cap, rot_re, rot_im, q_re, q_im, power):
+    """The M-th power detector on one sample ``x = xr + j xi`` (not a gap): the sample power
+    limited to ``cap`` (the sample scaled down to it, phase kept), and ``d = (x_lim g_rms)^M
+    e^{-j M point_angle} conj(q)`` against the NCO's ``q = e^{j M theta^}``, with ``rot =
+    e^{-j M point_angle}``. Returns ``(limited power, d re, d im)``."""
+    p = xr * xr + xi * xi
+    g = g_rms
+    if p > cap:
+        g = g_rms * np.sqrt(cap / p)
+        p = cap
+    zr, zi = pair_power(xr * g, xi * g, power)
+    zr, zi = zr * rot_re - zi * rot_im, zr * rot_im + zi * rot_re
+    return p, zr * q_re + zi * q_im, zi * q_re - zr * q_im
+
+
+@njit(cache=True, fastmath=_SIMD_MATH, error_model="numpy")
+def block_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re, rot_im, power):
+    """Sums over the samples of one whole update block, given as interleaved float32 I/Q
+    ``xs``, against the block's NCO tables ``tabs`` (:func:`block_tables`). Gaps (non-finite
+    or zero samples) are masked, not skipped, so the loop vectorises. Returns the sums of: the
+    normalised detector output ``Im(d) e_gain`` clipped to +-e_max; ``d`` (re, im); ``d/|d|``
+    (re, im); ``|d|^2``; the lock projection ``(d/|d|) rel`` (re, im); ``rel`` (the NCO against
+    the lock reference; re, im); and of the non-gap samples: their count, the count with
+    ``|d| > 0``, the limited power ``p``, and with the moment weights ``p``, ``p^2``, 1, and
+    with the level-step weights ``p``."""
+    s_e = 0.0
+    s_dr = 0.0
+    s_di = 0.0
+    s_ur = 0.0
+    s_ui = 0.0
+    s_mag2 = 0.0
+    s_fi = 0.0
+    s_fq = 0.0
+    s_rr = 0.0
+    s_ri = 0.0
+    s_valid = 0.0
+    s_unit = 0.0
+    s_p = 0.0
+    s_m2 = 0.0
+    s_m4 = 0.0
+    s_mw = 0.0
+    s_fast = 0.0
+    g_mag = g_rms * g_rms
+    for t in range(xs.shape[0] // 2):
+        xr = np.float64(xs[2 * t])
+        xi = np.float64(xs[2 * t + 1])
+        p = xr * xr + xi * xi
+        ok = (p > 0.0) & (p < np.inf)
+        xr = xr if ok else 1.0
+        xi = xi if ok else 0.0
+        p, dr, di = detector(xr, xi, g_rms, cap, rot_re, rot_im, tabs[2, t], tabs[3, t], power)
+        p = p if ok else 0.0
+        dr = dr if ok else 0.0
+        di = di if ok else 0.0
+        e = min(max(di * e_gain, -e_max), e_max)
+        mag = half_power(p * g_mag, power)              # |d| = (p/M2)^(M/2)
+        has = mag > 0.0
+        inv_mag = 1.0 / (mag if has else 1.0)
+        ur = dr * inv_mag
+        ui = di * inv_mag
+        rel_re = tabs[4, t]
+        rel_im = tabs[5, t]
+        wm = weights_m[t] if ok else 0.0
+        s_e += e
+        s_dr += dr
+        s_di += di
+        s_ur += ur
+        s_ui += ui
+        s_mag2 += mag * mag
+        s_fi += ur * rel_re - ui * rel_im
+        s_fq += ur * rel_im + ui * rel_re
+        s_rr += rel_re
+        s_ri += rel_im
+        s_valid += 1.0 if ok else 0.0
+        s_unit += 1.0 if has else 0.0
+        s_p += p
+        s_m2 += wm * p
+        s_m4 += wm * (p * p)
+        s_mw += wm
+        s_fast += weights_f[t] * p
+    return (s_e, s_dr, s_di, s_ur, s_ui, s_mag2, s_fi, s_fq, s_rr, s_ri, s_valid, s_unit, s_p,
+            s_m2, s_m4, s_mw, s_fast)
+
+
+@njit(cache=True, fastmath=_SIMD_MATH, error_model="numpy")
+def corrected(xs, outs, n0, t0, run, tabs):
+    """``y = x e^{-j theta^}`` for ``run`` samples of interleaved float32 ``xs`` from sample
+    ``n0``, block positions ``t0 + j`` of the NCO table, into interleaved float32 ``outs``; 0 for
+    a gap. Returns the number of gaps."""
+    gaps = 0.0
+    for j in range(run):
+        xr = np.float64(xs[2 * (n0 + j)])
+        xi = np.float64(xs[2 * (n0 + j) + 1])
+        p = xr * xr + xi * xi
+        ok = (p > 0.0) & (p < np.inf)
+        c = tabs[0, t0 + j]
+        s = tabs[1, t0 + j]
+        outs[2 * (n0 + j)] = np.float32(xr * c + xi * s) if ok else np.float32(0.0)
+        outs[2 * (n0 + j) + 1] = np.float32(xi * c - xr * s) if ok else np.float32(0.0)
+        gaps += 0.0 if ok else 1.0
+    return gaps
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def diagnostics(xs, ref, freq, err, n0, t0, run, tabs, f_now, g_rms, cap, rot_re, rot_im,
+                inv_power, power):
+    """The diagnostic outputs of ``run`` samples from ``n0`` (block positions from ``t0``), each
+    written if its array is not empty: the reference ``e^{j theta^}``, the frequency ``f_now``
+    (rad/sample) and the phase error ``arg(d) / M`` (rad; 0 for a gap)."""
+    for j in range(run):
+        i = n0 + j
+        t = t0 + j
+        if ref.shape[0] > 0:
+            ref[i] = complex(tabs[0, t], tabs[1, t])
+        if freq.shape[0] > 0:
+            freq[i] = f_now
+        if err.shape[0] > 0:
+            xr = np.float64(xs[2 * i])
+            xi = np.float64(xs[2 * i + 1])
+            p = xr * xr + xi * xi
+            err[i] = 0.0
+            if p > 0.0 and p < np.inf:
+                _, dr, di = detector(xr, xi, g_rms, cap, rot_re, rot_im, tabs[2, t], tabs[3, t],
+                                     power)
+                err[i] = np.arctan2(di, dr) * inv_power
+
+
+@njit(cache=True, inline="always")
+def block_length(wanted, lock_pos):
+    """Length of the update block starting ``lock_pos`` samples into a lock window: the
+    wanted power of two, halved until it divides the position (after a change of length
+    the blocks stay inside the window's quarters)."""
+    block = wanted
+    at = int(lock_pos)
+    while block > 1 and at & (block - 1):
+        block //= 2
+    return block
 
 
 @njit(nogil=True, cache=True, error_model='numpy')
@@ -598,13 +806,21 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     which the loop is not locked, so the caller can re-steer the NCO there
     (acquisition); it then continues with ``x[b:]``.
 
+    The loop filter runs once per update block (``params[P_BLOCK]`` samples, blocks counted
+    from the stream start, so a call may end and the next begin inside one): the samples
+    of a block are corrected at the block's one NCO frequency, their detector outputs
+    summed, and at the block end the filter, the NCO, the moments, the line, the slip
+    trackers and the lock window are updated from the sums. Slips are declared, and lock
+    windows end, on the last sample of a block.
+
     Returns ``(samples processed, slips declared, lock changes)``. ``state`` is
     updated in place.
     """
     k1 = params[P_K1]
     k2 = params[P_K2]
     k3 = params[P_K3]
-    rot = complex(params[P_ROT_RE], params[P_ROT_IM])
+    rot_re = params[P_ROT_RE]
+    rot_im = params[P_ROT_IM]
     fmin = params[P_FMIN]
     fmax = params[P_FMAX]
     alpha = params[P_ALPHA]
@@ -622,6 +838,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     sig2_floor = params[P_SIG2_FLOOR]
     start_mw = params[P_START_MW]
     e_max = params[P_E_MAX]
+    wanted_block = min(MAX_BLOCK, max(1, int(params[P_BLOCK])))
 
     phase = state[S_PHASE]
     acc1 = state[S_FREQ]
@@ -682,6 +899,24 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     slip_pos = state[S_SLIP_POS]
     strong = state[S_STRONG] > 0.0
     angle_counts = state[S_ANGLE_COUNTS]
+    block = int(state[S_BLOCK_LEN])
+    block_pos = int(state[S_BLOCK_POS])
+    block_open = state[S_BLOCK_OPEN]
+
+    xs = x.view(np.float32)                          # interleaved I/Q
+    outs = out.view(np.float32)
+    held = state[S_HELD:S_HELD + 2 * MAX_BLOCK]       # a view: written in place
+    held_f32 = np.empty(2 * MAX_BLOCK, np.float32)
+    tabs = np.empty((6, MAX_BLOCK))
+    weights_m = np.empty(MAX_BLOCK)
+    weights_f = np.empty(MAX_BLOCK)
+    if block < 1:
+        block = block_length(wanted_block, lock_pos)
+    decay_m, decay_f, line_alpha_b, lp_beta_b = block_coefficients(
+        block, alpha, line_alpha, lp_beta, weights_m, weights_f)
+    free_next_re = 0.0
+    free_next_im = 0.0
+    tables_ready = False
 
     want_ref = ref.shape[0] > 0
     want_freq = freq.shape[0] > 0
@@ -691,58 +926,134 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     n_slips = 0
 
     n_locks = 0
-    processed = x.shape[0]
+    n_total = x.shape[0]
+    processed = n_total
     next_stop = stop_first if stop_first >= 1 else stop_first + stop_every
-    for n in range(x.shape[0]):
-        while next_mark < n_marks and marks[next_mark] == n:
-            mark_freq[next_mark] = acc1 + step_in_freq * last_step
+    n = 0
+    while n < n_total:
+        if block_pos == 0:
+            # a block starts: its length, an exact NCO resync when due, the lock statistic's
+            # reference on the NCO, and whether the moments have settled (else it coasts)
+            wanted = block_length(wanted_block, lock_pos)
+            if wanted != block:
+                block = wanted
+                decay_m, decay_f, line_alpha_b, lp_beta_b = block_coefficients(
+                    block, alpha, line_alpha, lp_beta, weights_m, weights_f)
+            if nco_left <= 0.0:
+                # exact resync every NCO_RESYNC samples of the stream: no drift in phase or magnitude
+                ph_re, ph_im, pm_re, pm_im, nco_ref, rf_re, rf_im, rm_re, rm_im = nco_resync(
+                    phase, acc1, power)
+                slow_re = np.cos(power * ref_r)
+                slow_im = np.sin(power * ref_r)
+                nco_left = NCO_RESYNC
+            if free_re == 0.0 and free_im == 0.0:
+                # the lock statistic's reference starts on the NCO; it does not follow the noise
+                # within a window (the loop's own output does, which biases the statistic toward
+                # lock on band-limited noise)
+                free_re = pm_re
+                free_im = pm_im
+            block_open = 1.0 if mw >= start_mw else 0.0
+            tables_ready = False
+        if not tables_ready:
+            free_next_re, free_next_im = block_tables(
+                block, ph_re, ph_im, pm_re, pm_im, free_re, free_im, acc1, nco_ref, rf_re, rf_im,
+                rm_re, rm_im, free_f, free_a, power, tabs)
+            tables_ready = True
+        run = min(block - block_pos, n_total - n)
+        f_now = acc1 + step_in_freq * last_step          # the frequency over this block
+        while next_mark < n_marks and marks[next_mark] < n + run:
+            mark_freq[next_mark] = f_now
             next_mark += 1
-        if nco_left <= 0.0:
-            # exact resync every NCO_RESYNC samples of the stream: no drift in phase or magnitude
-            ph_re, ph_im, pm_re, pm_im, nco_ref, rf_re, rf_im, rm_re, rm_im = nco_resync(
-                phase, acc1, power)
-            slow_re = np.cos(power * ref_r)
-            slow_im = np.sin(power * ref_r)
-            nco_left = NCO_RESYNC
-        nco_left -= 1.0
-        norm_left -= 1.0
-        if free_re == 0.0 and free_im == 0.0:
-            # the lock statistic's reference starts on the NCO; it does not follow the noise
-            # within a window (the loop's own output does, which biases the statistic toward
-            # lock on band-limited noise)
-            free_re = pm_re
-            free_im = pm_im
-        nco_rel_re += pm_re * free_re + pm_im * free_im
-        nco_rel_im += pm_im * free_re - pm_re * free_im
-        c = ph_re
-        s = ph_im
-        xr = np.float64(x[n].real)
-        xi = np.float64(x[n].imag)
-        p = xr * xr + xi * xi
-        e_theta = 0.0
-        if not np.isfinite(p) or p == 0.0:
-            # gap: coast on the frequency register, output nothing
-            out[n] = 0.0
-            gaps += 1.0
-            last_step = 0.0
-            v = acc1 - nco_ref
+        e_gain = inv_norm if block_open > 0.0 else 0.0
+        cap_now = cap if cap > 0.0 else np.inf            # no limiter before the moments exist
+
+        # --- the block's samples: element-wise, at one NCO frequency ---------------------
+        gaps += corrected(xs, outs, n, block_pos, run, tabs)
+        if want_ref or want_freq or want_err:
+            diagnostics(xs, ref, freq, err, n, block_pos, run, tabs, f_now, inv_rms, cap_now,
+                        rot_re, rot_im, inv_power, power)
+        if run == block:
+            whole = xs[2 * n:2 * (n + block)]
         else:
-            out[n] = complex(xr * c + xi * s, xi * c - xr * s)
-            # limiter against spikes (only once the moments exist)
-            scale = 1.0
+            # part of a block: hold its samples until the block is whole, so that its sums
+            # are taken over the same samples in the same order however the calls fall
+            for k in range(2 * run):
+                held[2 * block_pos + k] = xs[2 * n + k]
+            whole = held_f32[:2 * block]
+            if block_pos + run == block:
+                for k in range(2 * block):
+                    held_f32[k] = held[k]
+        n += run
+        block_pos += run
+        if block_pos < block:
+            break                                         # the block goes on in the next call
+        block_pos = 0
+        last = n - 1                                      # the block's last sample
+        (blk_e, blk_d_re, blk_d_im, blk_u_re, blk_u_im, blk_mag2, blk_fi, blk_fq, blk_rr, blk_ri,
+         blk_valid, blk_unit, blk_p, blk_m2, blk_m4, blk_mw, blk_fast) = block_sums(
+            whole, tabs, weights_m, weights_f, inv_rms, cap_now, e_gain, e_max, rot_re, rot_im,
+            power)
+        free_i += blk_fi
+        free_q += blk_fq
+        nco_rel_re += blk_rr
+        nco_rel_im += blk_ri
+        lock_n += blk_unit
+
+        # --- block end: loop filter and NCO --------------------------------------------
+        acc1_block = acc1
+        if blk_valid > 0.0:
+            e_mean = blk_e / block
+            e_clip = e_max / block                        # one kick never exceeds pi / M
+            if e_mean > e_clip:
+                e_mean = e_clip
+            elif e_mean < -e_clip:
+                e_mean = -e_clip
+            last_step, acc1, acc2, v = loop_filter(e_mean, acc1, acc2, nco_ref, k1, k2, k3,
+                                                   fmin, fmax, block)
+        else:
+            last_step = 0.0                               # gaps only: coast
+            v = acc1 - nco_ref
+        phase += (block - 1) * acc1_block
+        phase, ph_re, ph_im, pm_re, pm_im = nco_advance(
+            phase, last_step, acc1, v, tabs[0, block - 1], tabs[1, block - 1],
+            tabs[2, block - 1], tabs[3, block - 1], rf_re, rf_im, rm_re, rm_im, power)
+        nco_step = (block - 1) * acc1_block + last_step + acc1    # the NCO's advance, rad
+        win_steps += nco_step
+        nco_left -= block
+        norm_left -= block
+        # the reference phasor runs at the NCO's rate of the earlier windows
+        free_re = free_next_re
+        free_im = free_next_im
+        free_f += block * free_a
+
+        # --- the line (against the NCO and the slow reference), the detector phasor's low-pass
+        if blk_valid > 0.0:
+            inv_valid = 1.0 / blk_valid
+            # the line, measured twice: against the NCO (shrunk by the loop's jitter,
+            # E[cos M phi]) and against the slip tracker's slow reference, d e^{j M ref_r}
+            # (free of that jitter, but shrunk while the reference itself still settles);
+            # neither can exceed the line but by noise, so the larger is used
+            line_re, line_im, slow_line_re, slow_line_im, line_w, line_p = line_update(
+                line_re, line_im, slow_line_re, slow_line_im, line_w, line_p,
+                blk_d_re * inv_valid, blk_d_im * inv_valid, slow_re, slow_im,
+                blk_mag2 * inv_valid, line_alpha_b)
+        if blk_unit > 0.0:
+            lp_re += lp_beta_b * (blk_u_re / blk_unit - lp_re)
+            lp_im += lp_beta_b * (blk_u_im / blk_unit - lp_im)
+
+        # --- moments (M2M4) and the level-step restart; detector normalisation
+        if blk_valid > 0.0:
             if mw > 0.0:
-                if p > cap:
-                    scale = np.sqrt(cap / p)
-                    p = cap
                 # a lasting level step of 6 dB or more (a signal appearing or fading,
                 # a gain change): the old moments describe another signal, so the
                 # amplitude estimate starts again (the loop coasts until it settles)
-                fast_m2 += FAST_ALPHA * (p - fast_m2)
+                fast_m2 = decay_f * fast_m2 + blk_fast
                 fw = fast_m2 * mw
                 if fw > LEVEL_STEP * m2 or fw * LEVEL_STEP < m2:
                     m2 = 0.0
                     m4 = 0.0
                     mw = 0.0
+                    cap = 0.0
                     norm_left = 0.0
                     line_re = 0.0
                     line_im = 0.0
@@ -751,89 +1062,45 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                     line_w = 0.0
                     line_p = 0.0
             else:
-                fast_m2 = p
-            # M2M4 moments; detector on the power-normalised sample
-            m2 += alpha * (p - m2)
-            m4 += alpha * (p * p - m4)
-            mw += alpha * (1.0 - mw)
+                fast_m2 = blk_p / blk_valid
+            m2 = decay_m * m2 + blk_m2
+            m4 = decay_m * m4 + blk_m4
+            mw = decay_m * mw + blk_mw
             if norm_left <= 0.0 or mw < MW_SETTLED:
                 inv_rms, cap, inv_norm, line_on = normalisation(
                     m2, m4, mw, locked, line_re, line_im, slow_line_re, slow_line_im, line_w,
                     line_p, line_alpha, sig2_floor, power)
                 norm_left = NORM_BLOCK
-            # detector d = (y_lim/sqrt(M2))^M e^{-j M point_angle} = z conj(P^M)
-            g = scale * inv_rms
-            z = complex(*pair_power(xr * g, xi * g, power)) * rot
-            d = complex(z.real * pm_re + z.imag * pm_im, z.imag * pm_re - z.real * pm_im)
-            e = d.imag * inv_norm                # / line: mean sin(M phi)
-            if mw < start_mw:
-                e = 0.0                          # start-up: moments not settled yet, coast
-            elif e > e_max:
-                e = e_max
-            elif e < -e_max:
-                e = -e_max
-            last_step, acc1, acc2, v = loop_filter(e, acc1, acc2, nco_ref, k1, k2, k3, fmin, fmax)
-            # lock statistic: cos(M arg y) = Re(d)/|d|
-            mag = half_power(p * inv_rms * inv_rms, power)   # |d| = (p/M2)^(M/2)
-            # the line, measured twice: against the NCO (shrunk by the loop's jitter,
-            # E[cos M phi]) and against the slip tracker's slow reference, d e^{j M ref_r}
-            # (free of that jitter, but shrunk while the reference itself still settles);
-            # neither can exceed the line but by noise, so the larger is used
-            line_re, line_im, slow_line_re, slow_line_im, line_w, line_p = line_update(
-                line_re, line_im, slow_line_re, slow_line_im, line_w, line_p,
-                d.real, d.imag, slow_re, slow_im, mag, line_alpha)
-            if mag > 0.0:
-                inv_mag = 1.0 / mag
-                lock_n += 1.0
-                free_i += (z.real * free_re + z.imag * free_im) * inv_mag
-                free_q += (z.imag * free_re - z.real * free_im) * inv_mag
-                lp_re += lp_beta * (d.real * inv_mag - lp_re)
-                lp_im += lp_beta * (d.imag * inv_mag - lp_im)
-            if want_err:
-                e_theta = np.arctan2(d.imag, d.real) * inv_power
-        # the reference phasor runs at the NCO's rate of the earlier windows
-        free_re, free_im = _rotate(free_re, free_im, power * free_f)
-        free_f += free_a
-        if want_ref:
-            ref[n] = complex(c, s)
-        if want_freq:
-            freq[n] = acc1 + step_in_freq * last_step
-        if want_err:
-            err[n] = e_theta
-        phase, ph_re, ph_im, pm_re, pm_im = nco_advance(
-            phase, last_step, acc1, v, ph_re, ph_im, pm_re, pm_im, rf_re, rf_im, rm_re, rm_im,
-            power)
 
-        # cycle slips. Two trackers, both updated every sample:
+        # --- cycle slips. Two trackers, both updated every block:
         #  - the reference: a slow 3rd-order tracker of the unwrapped NCO phase (noise-proof,
         #    decides while the signal is weak);
         #  - the detector angle: the unwrapped angle of the low-passed detector phasor (follows
         #    whatever the loop follows, decides while the signal is strong).
-        nco_step = last_step + acc1
-        win_steps += nco_step
-        slip_pos += 1.0
+        slip_pos += block
         if slip_pos >= lp_decim:
             slip_pos = 0.0
             psi, psi_last, psi_ref, angle_counts, slip = angle_slip(
                 lp_re, lp_im, psi, psi_last, psi_ref, angle_counts, locked, strong, lp_beta)
             if slip != 0.0:
                 slips += slip
-                n_slips = _record_slip(slip_at, slip_count, n_slips, n, slip)
+                n_slips = _record_slip(slip_at, slip_count, n_slips, last, slip)
         if locked > 0.0:
             g1, g2, g3 = reference_gains(params, ref_age)
             ref_r, ref_f, ref_a, slow_re, slow_im, slip = reference_slip(
-                ref_r, ref_f, ref_a, slow_re, slow_im, nco_step, g1, g2, g3, strong, acc2, power)
+                ref_r, ref_f, ref_a, slow_re, slow_im, nco_step, g1, g2, g3, strong, acc2, power,
+                block)
             if slip != 0.0:
                 slips += slip
-                n_slips = _record_slip(slip_at, slip_count, n_slips, n, slip)
+                n_slips = _record_slip(slip_at, slip_count, n_slips, last, slip)
 
-        # lock indicator: decide at the end of each window
-        lock_pos += 1.0
+        # --- lock indicator: decide at the end of each window
+        lock_pos += block
         if lock_pos == quarter_1 or lock_pos == quarter_2 or lock_pos == quarter_3 or \
                 lock_pos >= lock_window:
-            j = (4 * (int(lock_pos) - 1)) // window_int          # the quarter just finished
-            quarters[j] = free_i
-            quarters[4 + j] = free_q
+            q = (4 * (int(lock_pos) - 1)) // window_int          # the quarter just finished
+            quarters[q] = free_i
+            quarters[4 + q] = free_q
             free_i = 0.0
             free_q = 0.0
         if lock_pos >= lock_window:
@@ -872,7 +1139,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                     ref_a = acc2 if k3 > 0.0 else slope    # a 3rd-order loop knows the rate
                     ref_age = 0.0
             if locked != was_locked:
-                lock_at[n_locks] = n + 1
+                lock_at[n_locks] = last + 1
                 lock_to[n_locks] = 1 if locked > 0.0 else 0
                 lock_freq[n_locks] = acc1 + step_in_freq * last_step
                 n_locks += 1
@@ -881,11 +1148,14 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             lock_pos = 0.0
             if mw >= MW_SETTLED:      # keep the last verdict while the moments restart
                 strong = loop_snr(m2 / mw, m4 / mw, power, bt) >= STRONG_LOOP_SNR
-        if stop_every > 0 and n + 1 == next_stop:
-            next_stop += stop_every
-            if locked <= 0.0:
-                processed = n + 1
-                break
+        if stop_every > 0:
+            while next_stop < n:
+                next_stop += stop_every
+            if n == next_stop:
+                next_stop += stop_every
+                if locked <= 0.0:
+                    processed = n
+                    break
     while next_mark < n_marks:
         mark_freq[next_mark] = acc1 + step_in_freq * last_step
         next_mark += 1
@@ -947,4 +1217,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_SLIP_POS] = slip_pos
     state[S_STRONG] = 1.0 if strong else 0.0
     state[S_ANGLE_COUNTS] = angle_counts
+    state[S_BLOCK_LEN] = block
+    state[S_BLOCK_POS] = block_pos
+    state[S_BLOCK_OPEN] = block_open
     return processed, n_slips, n_locks

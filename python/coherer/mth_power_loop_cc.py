@@ -41,6 +41,14 @@ SLIP_ANGLE_BETA_PER_BT = 8.0
 EVENT_LOG = 1000
 
 
+def _tracker_gains(bt, block):
+    """Gains of the slip tracker's 3rd-order reference of noise bandwidth ``bt`` (B_L T),
+    updated once per ``block`` samples, in the kernel's units (``reference_slip``): the
+    per-block textbook gains ``(g1, g2, g3)`` at ``bt * block`` as ``(g1, g2 / L, g3 / L^2)``."""
+    g1, g2, g3 = design.textbook_gains(3, bt * block, 1.0)
+    return g1, g2 / block, g3 / (block * block)
+
+
 def default_point_angle(power):
     """Constellation angle (rad) of one point after correction: pi/4 for QPSK, else 0."""
     return pi / 4.0 if power == 4 else 0.0
@@ -51,7 +59,8 @@ class mth_power_loop_cc(gr.sync_block):
     4th/8th-power loops for QPSK/8PSK).
 
     Args:
-        sample_rate: input rate, samples/s (the loop updates every sample).
+        sample_rate: input rate, samples/s (the loop updates once per update block,
+            ``loop_design().block`` samples: 1 for wide loops, up to 64 for narrow ones).
         power: symmetry order M, 1..16 (1 pilot/residual carrier, 2 BPSK, 4 QPSK, 8 8PSK).
         noise_bw_hz: one-sided loop noise bandwidth B_L in Hz (carrier-phase domain).
             The discrete loop's actual noise bandwidth equals this value exactly,
@@ -162,8 +171,11 @@ class mth_power_loop_cc(gr.sync_block):
 
     def _publish(self, noise_bw_hz, damping, loop_order):
         """Design the loop and publish gains in one atomic assignment."""
-        d = design.design_loop(self._fs, self._power, noise_bw_hz, damping, loop_order)
+        bt = float(noise_bw_hz) / self._fs
+        block = design.update_block(bt, most=min(design.MAX_UPDATE_BLOCK, self._lock_window // 4))
+        d = design.design_loop(self._fs, self._power, noise_bw_hz, damping, loop_order, block=block)
         p = np.zeros(K.PARAMS_SIZE)
+        p[K.P_BLOCK] = block
         p[K.P_K1], p[K.P_K2], p[K.P_K3] = d.k1, d.k2, d.k3
         rot = np.exp(-1j * self._power * self._point_angle)
         p[K.P_ROT_RE], p[K.P_ROT_IM] = rot.real, rot.imag
@@ -173,15 +185,14 @@ class mth_power_loop_cc(gr.sync_block):
         p[K.P_STEP_IN_FREQ] = 1.0 if loop_order == 1 else 0.0
         p[K.P_LOCK_WINDOW] = self._lock_window
         p[K.P_LINE_ALPHA] = 1.0 / max(MIN_LINE_AVERAGING, LINE_AVERAGING_PER_BT / d.bt)
-        p[K.P_REF_G1], p[K.P_REF_G2], p[K.P_REF_G3] = design.textbook_gains(
-            3, SLIP_REFERENCE_BW * d.bt, 1.0)
+        p[K.P_REF_G1], p[K.P_REF_G2], p[K.P_REF_G3] = _tracker_gains(SLIP_REFERENCE_BW * d.bt, block)
         beta = min(0.5, SLIP_ANGLE_BETA_PER_BT * d.bt)
         p[K.P_LP_BETA] = beta
         p[K.P_LP_DECIM] = max(1, int(1.0 / (16.0 * beta)))
         p[K.P_BT] = d.bt
         for k, fraction in enumerate(SLIP_REFERENCE_STAGES_BW):
-            p[K.P_REF_STAGE_G + 3 * k:K.P_REF_STAGE_G + 3 * k + 3] = design.textbook_gains(
-                3, fraction * d.bt, 1.0)
+            p[K.P_REF_STAGE_G + 3 * k:K.P_REF_STAGE_G + 3 * k + 3] = _tracker_gains(
+                fraction * d.bt, block)
         s_min = max(MIN_SIGNAL_FRACTION, MAX_GAIN_BOOST ** (-2.0 / self._power))
         p[K.P_SIG2_FLOOR] = s_min * s_min
         p[K.P_START_MW] = 1.0 - (1.0 - p[K.P_ALPHA]) ** START_SAMPLES
@@ -251,7 +262,8 @@ class mth_power_loop_cc(gr.sync_block):
             self._spec = (bw, float(damping), order)
 
     def set_freq_guess_hz(self, freq_hz):
-        """Re-steer the NCO to ``freq_hz`` (Hz) at the start of the next work() call."""
+        """Re-steer the NCO to ``freq_hz`` (Hz) at the next update-block boundary the stream
+        reaches (within ``loop_design().block`` samples of the next work() call)."""
         self._check_freq("freq_guess_hz", freq_hz)
         self._pending_freq = self._hz_to_rad(freq_hz)
 
@@ -327,10 +339,6 @@ class mth_power_loop_cc(gr.sync_block):
         n = len(x)
         start = self.nitems_read(0)
         params = self._params
-        pending = self._pending_freq
-        if pending is not None:
-            self._pending_freq = None
-            self._set_nco_frequency(pending)
         with_diag = len(output_items) > 1
         nfft = self._nfft
         if self._held_tag is not None:
@@ -338,9 +346,20 @@ class mth_power_loop_cc(gr.sync_block):
             self._held_tag = None
         pos = 0
         while pos < n:
-            # one kernel call for the whole buffer; while acquiring it returns at each
+            # a re-steer asked for by setter or message waits for the end of the update block
+            # in progress (a block runs at one NCO frequency)
+            stop = n
+            if self._pending_freq is not None:
+                left = K.block_remaining(self._state)
+                if left == 0:
+                    self._set_nco_frequency(self._pending_freq)
+                    self._pending_freq = None
+                else:
+                    stop = min(n, pos + left)
+            # one kernel call for the rest of the buffer; while acquiring it returns at each
             # unlocked FFT-block end so that the NCO can be re-steered there
-            end, n_slips, n_locks = self._process(x, output_items, pos, start, params, with_diag)
+            end, n_slips, n_locks = self._process(x[:stop], output_items, pos, start, params,
+                                                  with_diag)
             hz = self._fs / (2.0 * pi)
             for i in range(n_locks):
                 at = start + pos + int(self._lock_at[i])

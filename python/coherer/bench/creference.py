@@ -61,9 +61,10 @@ def loop_arguments(params, power, freq0):
         return params[index] if index is not None else absent
     values = (params[K.P_K1], params[K.P_K2], params[K.P_K3], params[K.P_ROT_RE],
               params[K.P_ROT_IM], params[K.P_FMIN], params[K.P_FMAX], params[K.P_ALPHA],
-              value("P_SIG2_FLOOR", 0.0), value("P_START_MW", 0.0), value("P_E_MAX", np.inf),
-              freq0)
-    return [str(int(power))] + [repr(float(v)) for v in values]
+              value("P_SIG2_FLOOR", 0.0), value("P_START_MW", 0.0), value("P_E_MAX", np.inf))
+    block = int(value("P_BLOCK", 1.0)) or 1
+    return ([str(int(power))] + [repr(float(v)) for v in values]
+            + [str(block), repr(float(freq0))])
 
 
 def run_reference(exe, data_path, params, power, freq0=0.0, reps=1, out_path=None):

@@ -1,29 +1,33 @@
 /* SPDX-License-Identifier: GPL-3.0-or-later
  *
  * Plain C reference of the gr-coherer M-th power carrier loop, used by
- * `coherer bench` as the compiled-code yardstick. It runs the same per-sample
- * recursion as python/coherer/_loop_kernel.py in float64, written the
- * straightforward way: one sin/cos of the NCO phase per sample.
+ * `coherer bench` as the compiled-code yardstick. It runs the same recursion as
+ * python/coherer/_loop_kernel.py in float64, written the straightforward way:
+ * one sin/cos of the NCO phase per sample, one loop-filter update per block of
+ * BLOCK samples.
  *
- *   y   = x e^{-j theta}                          derotate
+ *   y   = x e^{-j theta}                          derotate (theta += acc1 within a block)
  *   d   = (y_lim / sqrt(M2))^M e^{-j M point_angle}  M-th power detector (repeated squaring)
- *   e   = Im(d) / (S/M2)^(M/2)                     normalised by the M2M4 signal estimate
- *   acc2 += K3 e; acc1 += K2 e + acc2              PI filter + double integrator (clamped)
- *   theta += K1 e + acc1                           NCO (used from the next sample on)
+ *   e   = mean over the block of Im(d) / (S/M2)^(M/2)  normalised by the M2M4 signal estimate
+ *   acc2 += L K3 e; acc1 += L K2 e + L acc2        at the block end (L = BLOCK; clamped)
+ *   theta += L K1 e + acc1                         the block's last step
  *
- * The normalisation (1/sqrt(M2), (S/M2)^(M/2), limiter level) is recomputed from
- * the moments every NORM_BLOCK samples once the moment weight reaches MW_SETTLED,
- * every sample before, as in the kernel.
+ * The moments are exponential averages per sample (weights within a block
+ * precomputed); the normalisation (1/sqrt(M2), (S/M2)^(M/2), limiter level) is
+ * recomputed from them at a block end every NORM_BLOCK samples once the moment
+ * weight reaches MW_SETTLED, every block before, as in the kernel.
  *
- * Gaps (non-finite or zero samples) coast the NCO and output 0; a sample whose
- * power exceeds LIMIT * M2 is limited to that power before the detector; a
- * lasting level step (LEVEL_STEP in power, 64-sample average) restarts the moments; the loop
- * stays open until the moment weight reaches START_MW; e is clipped to +-E_MAX. The lock indicator and
- * slip tracker of the block are not part of this reference.
+ * Gaps (non-finite or zero samples) add nothing to the sums and output 0; a sample
+ * whose power exceeds LIMIT * M2 is limited to that power before the detector; a
+ * lasting level step (LEVEL_STEP in power, 64-sample average, checked at block ends)
+ * restarts the moments; the loop stays open in a block that starts before the moment
+ * weight reaches START_MW; e is clipped to +-E_MAX per sample and its block mean to
+ * +-E_MAX / BLOCK. The lock indicator and slip tracker of the block are not part of
+ * this reference.
  *
  * Usage:
  *   reference_loop IN.cf32 M K1 K2 K3 ROT_RE ROT_IM FMIN FMAX ALPHA SIG2_FLOOR START_MW E_MAX
- *                  FREQ0 REPS [OUT.cf32]
+ *                  BLOCK FREQ0 REPS [OUT.cf32]
  * IN/OUT are interleaved little-endian float32 I/Q. The loop runs REPS times over the
  * whole input, each time from the same initial state (phase 0, frequency FREQ0 rad/sample).
  * Prints one line per repetition: "rep <i> seconds <wall> cpu_seconds <cpu> msps <r>", then
@@ -80,7 +84,7 @@ static cplx cpow_int(cplx z, int m)
 }
 
 typedef struct {
-    int power;
+    int power, block;
     double k1, k2, k3, fmin, fmax, alpha, sig2_floor, start_mw, e_max;
     cplx rot;
 } params_t;
@@ -103,39 +107,91 @@ static void run_loop(const float *x, float *out, long n, const params_t *p, stat
     double phase = s->phase, acc1 = s->acc1, acc2 = s->acc2;
     double m2 = s->m2, m4 = s->m4, mw = s->mw, fast_m2 = s->fast_m2;
     double norm_left = s->norm_left, inv_rms = s->inv_rms, inv_norm = s->inv_norm, cap = s->cap;
-    for (long i = 0; i < n; i++) {
-        double c = cos(phase), sn = sin(phase);
-        double xr = x[2 * i], xi = x[2 * i + 1];
-        double pw = xr * xr + xi * xi;
-        norm_left -= 1.0;
-        if (!isfinite(pw) || pw == 0.0) {
-            out[2 * i] = 0.0f;
-            out[2 * i + 1] = 0.0f;
-        } else {
-            cplx y = { xr * c + xi * sn, xi * c - xr * sn };
-            out[2 * i] = (float)y.re;
-            out[2 * i + 1] = (float)y.im;
-            if (mw > 0.0) {
-                if (pw > cap) {
-                    double scale = sqrt(cap / pw);
+    const int L = p->block;
+    const double decay_m = pow(1.0 - p->alpha, L), decay_f = pow(1.0 - FAST_ALPHA, L);
+    double *w = malloc(L * sizeof(double)), *wf = malloc(L * sizeof(double));
+    for (int t = 0; t < L; t++) {       /* the exponential averages' weights within a block */
+        w[t] = p->alpha * pow(1.0 - p->alpha, L - 1 - t);
+        wf[t] = FAST_ALPHA * pow(1.0 - FAST_ALPHA, L - 1 - t);
+    }
+    for (long b0 = 0; b0 < n; b0 += L) {
+        /* one update block: every sample at the NCO frequency acc1, one sin/cos each */
+        double e_gain = mw >= p->start_mw ? inv_norm : 0.0, cap_now = cap > 0.0 ? cap : INFINITY;
+        double s_e = 0.0, s_valid = 0.0, s_p = 0.0, s_m2 = 0.0, s_m4 = 0.0, s_mw = 0.0, s_fast = 0.0;
+        long end = b0 + L < n ? b0 + L : n;
+        for (long i = b0; i < end; i++) {
+            double c = cos(phase), sn = sin(phase);
+            double xr = x[2 * i], xi = x[2 * i + 1];
+            double pw = xr * xr + xi * xi;
+            if (!isfinite(pw) || pw == 0.0) {
+                out[2 * i] = 0.0f;
+                out[2 * i + 1] = 0.0f;
+            } else {
+                cplx y = { xr * c + xi * sn, xi * c - xr * sn };
+                out[2 * i] = (float)y.re;
+                out[2 * i + 1] = (float)y.im;
+                if (pw > cap_now) {
+                    double scale = sqrt(cap_now / pw);
                     y.re *= scale;
                     y.im *= scale;
-                    pw = cap;
+                    pw = cap_now;
                 }
-                fast_m2 += FAST_ALPHA * (pw - fast_m2);
+                s_valid += 1.0;
+                s_p += pw;
+                s_m2 += w[i - b0] * pw;
+                s_m4 += w[i - b0] * pw * pw;
+                s_mw += w[i - b0];
+                s_fast += wf[i - b0] * pw;
+                cplx yn = { y.re * inv_rms, y.im * inv_rms };
+                cplx d = cmul(cpow_int(yn, p->power), p->rot);
+                double e = d.im * e_gain;
+                s_e += e > p->e_max ? p->e_max : (e < -p->e_max ? -p->e_max : e);
+            }
+            if (i < b0 + L - 1)
+                phase += acc1;
+        }
+        if (end < b0 + L)
+            break;                              /* the stream ends inside a block */
+        /* block end: loop filter on the mean error (one kick never exceeds pi / M) */
+        double kick = 0.0;
+        if (s_valid > 0.0) {
+            double e = s_e / L, e_clip = p->e_max / L;
+            e = e > e_clip ? e_clip : (e < -e_clip ? -e_clip : e);
+            acc2 += L * p->k3 * e;
+            acc1 += L * p->k2 * e + L * acc2;
+            if (acc1 > p->fmax) {
+                acc1 = p->fmax;
+                if (acc2 > 0.0)
+                    acc2 = 0.0;
+            } else if (acc1 < p->fmin) {
+                acc1 = p->fmin;
+                if (acc2 < 0.0)
+                    acc2 = 0.0;
+            }
+            kick = L * p->k1 * e;
+        }
+        phase += kick + acc1;
+        if (phase >= M_PI || phase < -M_PI)
+            phase -= 2.0 * M_PI * floor((phase + M_PI) / (2.0 * M_PI));
+        /* moments, level-step restart, normalisation */
+        norm_left -= L;
+        if (s_valid > 0.0) {
+            if (mw > 0.0) {
+                fast_m2 = decay_f * fast_m2 + s_fast;
                 double fw = fast_m2 * mw;
                 if (fw > LEVEL_STEP * m2 || fw * LEVEL_STEP < m2) {
                     m2 = 0.0;
                     m4 = 0.0;
                     mw = 0.0;
+                    cap = 0.0;
                     norm_left = 0.0;
                 }
             } else {
-                fast_m2 = pw;
+                fast_m2 = s_p / s_valid;
             }
-            m2 += p->alpha * (pw - m2);
-            m4 += p->alpha * (pw * pw - m4);
-            mw += p->alpha * (1.0 - mw);
+            m2 = decay_m * m2 + s_m2;
+            m4 = decay_m * m4 + s_m4;
+            mw = decay_m * mw + s_mw;
             if (norm_left <= 0.0 || mw < MW_SETTLED) {
                 double mm2 = m2 / mw;
                 double sig2 = 2.0 - (m4 / mw) / (mm2 * mm2);
@@ -146,32 +202,10 @@ static void run_loop(const float *x, float *out, long n, const params_t *p, stat
                 cap = LIMIT * mm2;
                 norm_left = NORM_BLOCK;
             }
-            cplx yn = { y.re * inv_rms, y.im * inv_rms };
-            cplx d = cmul(cpow_int(yn, p->power), p->rot);
-            double e = d.im * inv_norm;
-            if (mw < p->start_mw)
-                e = 0.0;
-            else if (e > p->e_max)
-                e = p->e_max;
-            else if (e < -p->e_max)
-                e = -p->e_max;
-            acc2 += p->k3 * e;
-            acc1 += p->k2 * e + acc2;
-            if (acc1 > p->fmax) {
-                acc1 = p->fmax;
-                if (acc2 > 0.0)
-                    acc2 = 0.0;
-            } else if (acc1 < p->fmin) {
-                acc1 = p->fmin;
-                if (acc2 < 0.0)
-                    acc2 = 0.0;
-            }
-            phase += p->k1 * e;
         }
-        phase += acc1;
-        if (phase >= M_PI || phase < -M_PI)
-            phase -= 2.0 * M_PI * floor((phase + M_PI) / (2.0 * M_PI));
     }
+    free(w);
+    free(wf);
     s->phase = phase; s->acc1 = acc1; s->acc2 = acc2;
     s->m2 = m2; s->m4 = m4; s->mw = mw; s->fast_m2 = fast_m2;
     s->norm_left = norm_left; s->inv_rms = inv_rms; s->inv_norm = inv_norm; s->cap = cap;
@@ -179,9 +213,9 @@ static void run_loop(const float *x, float *out, long n, const params_t *p, stat
 
 int main(int argc, char **argv)
 {
-    if (argc != 16 && argc != 17) {
+    if (argc != 17 && argc != 18) {
         fprintf(stderr, "usage: %s IN.cf32 M K1 K2 K3 ROT_RE ROT_IM FMIN FMAX ALPHA SIG2_FLOOR START_MW "
-                "E_MAX FREQ0 REPS [OUT.cf32]\n", argv[0]);
+                "E_MAX BLOCK FREQ0 REPS [OUT.cf32]\n", argv[0]);
         return 2;
     }
     params_t p;
@@ -190,10 +224,11 @@ int main(int argc, char **argv)
     p.rot.re = atof(argv[6]); p.rot.im = atof(argv[7]);
     p.fmin = atof(argv[8]); p.fmax = atof(argv[9]); p.alpha = atof(argv[10]);
     p.sig2_floor = atof(argv[11]); p.start_mw = atof(argv[12]); p.e_max = atof(argv[13]);
-    double freq0 = atof(argv[14]);
-    int reps = atoi(argv[15]);
-    if (p.power < 1 || reps < 1) {
-        fprintf(stderr, "M and REPS must be >= 1\n");
+    p.block = atoi(argv[14]);
+    double freq0 = atof(argv[15]);
+    int reps = atoi(argv[16]);
+    if (p.power < 1 || reps < 1 || p.block < 1) {
+        fprintf(stderr, "M, BLOCK and REPS must be >= 1\n");
         return 2;
     }
 
@@ -220,10 +255,10 @@ int main(int argc, char **argv)
     }
     printf("final phase %.17g freq %.17g\n", s.phase, s.acc1);
 
-    if (argc == 17) {
-        FILE *g = fopen(argv[16], "wb");
+    if (argc == 18) {
+        FILE *g = fopen(argv[17], "wb");
         if (!g || (long)fwrite(out, 2 * sizeof(float), n, g) != n) {
-            fprintf(stderr, "cannot write %s\n", argv[13]);
+            fprintf(stderr, "cannot write %s\n", argv[17]);
             return 2;
         }
         fclose(g);

@@ -74,7 +74,7 @@ from ._bandwidth import (
     closed_loop, closed_loop_poles, loop_state_matrices, noise_bandwidth_bt, impulse_response,
     solve_small, steady_phase_error, steady_rate_limit)
 from ._loop import (
-    LoopDesign, design_loop)
+    LoopDesign, design_loop, update_block, MAX_UPDATE_BLOCK, BLOCK_BT)
 from ._detector import (
     mth_power_noise, RRC_SPAN_SYMBOLS, EXP_SERIES_MAX_POWER, rrc_taps, noise_variance_per_sample,
     DetectorNoise, detector_noise, detector_noise_density, _shaped_statistics, _shaped_terms)

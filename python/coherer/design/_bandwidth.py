@@ -31,32 +31,41 @@ def closed_loop(g_gains):
     return np.pad(num, (0, n - len(num))), np.pad(den, (0, n - len(den)))
 
 
-def closed_loop_poles(g_gains):
-    """Closed-loop poles (z-plane) of the loop with gain vector ``g_gains``.
+def closed_loop_poles(g_gains, block=1):
+    """Closed-loop poles (z-plane, one step per update block of ``block`` samples) of the
+    loop with gain vector ``g_gains``.
 
     Computed as ``1 + eig(Delta)`` of the delta-form model, which stays accurate
     when the poles crowd around z = 1 (narrow loops).
     """
-    delta, _ = loop_state_matrices(g_gains)
+    delta, _, _ = loop_state_matrices(g_gains, block)
     return 1.0 + np.linalg.eigvals(delta)
 
 
-def loop_state_matrices(g_gains):
-    """Phase-domain state-space model of the linearised loop in delta form.
+def loop_state_matrices(g_gains, block=1):
+    """Phase-domain state-space model of the linearised loop in delta form, one step per
+    update block of L = ``block`` samples.
 
-    State ``x = [theta^, acc1, ..., acc_(d-1)]`` (NCO phase and the filter's integrators),
-    input the carrier phase theta: ``x[n+1] = x[n] + Delta x[n] + B theta[n]``, output
-    ``theta^``. Integrator i collects ``gK_(i+1) + ... + gK_d`` times the error and feeds every
-    later state: ``B_i = -Delta[i, 0] = sum_(j >= i) gK_(j+1)``, ``Delta[i, k] = 1`` for k > i.
-    Returns ``(Delta, B)``. The delta form keeps the Lyapunov solution accurate for
-    very narrow loops, where ``A = I + Delta`` has eigenvalues close to 1.
+    State ``x = [theta^, acc1, acc2][:d]`` (the NCO phase at the block start, rad, and the
+    filter's registers, rad/sample and rad/sample^2), input the carrier phase theta over the
+    block: ``x[k+1] = x[k] + Delta x[k] + B theta[k]``, output ``C x``, the NCO phase
+    averaged over the block. Within a block the NCO runs at ``acc1``; at its end the block's
+    mean error ``e = theta - C x`` moves the registers, ``acc2 += L gK3 e``,
+    ``acc1 += L gK2 e + L acc2``, and the NCO's last step of the block is ``L gK1 e + acc1``
+    (what the kernel does). For L = 1 this is the per-sample loop: ``Delta[i, k] = 1`` for
+    k > i and ``B_i = -Delta[i, 0] = sum_(j >= i) gK_(j+1)``. Returns ``(Delta, B, C)``. The
+    delta form keeps the Lyapunov solution accurate for very narrow loops, where
+    ``A = I + Delta`` has eigenvalues close to 1.
     """
     g = gain_vector(g_gains)
     order = len(g)
-    tail = np.array([sum(g[i:]) for i in range(order)])
-    delta = np.triu(np.ones((order, order)), 1)
-    delta[:, 0] = -tail
-    return delta, tail
+    g1, g2, g3 = (tuple(g) + (0.0, 0.0))[:3]
+    L = float(block)
+    c = 0.5 * (L - 1.0)                       # block mean of the phase: theta^ + c acc1
+    b = np.array([L * (g1 + g2 + L * g3), L * (g2 + L * g3), L * g3])
+    c_out = np.array([1.0, c, 0.0])
+    delta = np.array([[0.0, L, L], [0.0, 0.0, L], [0.0, 0.0, 0.0]]) - np.outer(b, c_out)
+    return delta[:order, :order], b[:order], c_out[:order]
 
 
 def steady_phase_error(g_gains, sample_rate, degree, rate):
@@ -84,21 +93,23 @@ def steady_rate_limit(g_gains, sample_rate, degree, max_error_rad):
     return max_error_rad * g[-1] * sample_rate ** degree / (2.0 * pi)
 
 
-def noise_bandwidth_bt(g_gains):
-    """Exact noise bandwidth ``B_L T = 0.5 sum h[n]^2`` of the discrete loop (REFERENCES 0).
+def noise_bandwidth_bt(g_gains, block=1):
+    """Exact noise bandwidth ``B_L T`` of the discrete loop updated once per ``block``
+    samples: ``0.5 sum h[n]^2`` for the per-sample loop (REFERENCES 0), and in general
+    ``C P C' / (2 L)``, where ``P`` is the state covariance for a unit white input per block
+    (the block mean of white detector noise has 1/L of its variance per sample).
 
-    Closed form: the output variance of the state-space model for a unit white
-    input, from the discrete Lyapunov equation ``P = A P A' + B B'`` written as
+    Closed form: the discrete Lyapunov equation ``P = A P A' + B B'`` written as
     ``Delta P + P Delta' + Delta P Delta' = -B B'``. ``inf`` if the loop is unstable.
     """
-    if np.any(np.abs(closed_loop_poles(g_gains)) >= 1.0):
+    if np.any(np.abs(closed_loop_poles(g_gains, block)) >= 1.0):
         return inf
-    delta, b = loop_state_matrices(g_gains)
+    delta, b, c_out = loop_state_matrices(g_gains, block)
     n = len(b)
     eye = np.eye(n)
     kron = np.kron(delta, eye) + np.kron(eye, delta) + np.kron(delta, delta)
     p = solve_small(kron, -np.outer(b, b).ravel()).reshape(n, n)
-    return 0.5 * float(p[0, 0])
+    return float(c_out @ p @ c_out) / (2.0 * block)
 
 
 def solve_small(a, b):

@@ -11,6 +11,22 @@ from ..arguments import validate_spec
 from ._bandwidth import noise_bandwidth_bt, steady_phase_error
 from ._gains import loop_formulas, loop_gains, padded_gains
 
+#: Longest update block, samples (a power of two).
+MAX_UPDATE_BLOCK = 64
+#: Update blocks are at most this long in units of 1 / B_L: B_L L T <= 1/32, where the
+#: block's half-block delay still changes the loop little (REFERENCES 1.4) and the designer
+#: includes it exactly.
+BLOCK_BT = 1.0 / 32.0
+
+
+def update_block(bt, most=MAX_UPDATE_BLOCK):
+    """Update block length for a loop of B_L T = ``bt``: the longest power of two L, at most
+    ``most``, with ``L bt <= BLOCK_BT`` (1 for wide loops: an update every sample)."""
+    block = 1
+    while 2 * block <= most and 2 * block * bt <= BLOCK_BT:
+        block *= 2
+    return block
+
 
 @dataclass(frozen=True)
 class LoopDesign:
@@ -28,6 +44,7 @@ class LoopDesign:
     k1: float
     k2: float
     k3: float
+    block: int = 1         #: update block: the loop filter runs once per this many samples
 
     @property
     def bt(self):
@@ -54,34 +71,41 @@ class LoopDesign:
         return steady_phase_error(self.g_gains, self.sample_rate, 1, step_hz)
 
 
-def design_loop(sample_rate, power, noise_bw_hz, damping=0.707, loop_order=2, exact=True):
+def design_loop(sample_rate, power, noise_bw_hz, damping=0.707, loop_order=2, exact=True,
+                block=None):
     """Design a loop; returns a :class:`LoopDesign`.
 
     Parameters
     ----------
-    sample_rate : float   samples/s (the loop updates once per sample)
+    sample_rate : float   samples/s
     power : int           symmetry order M (1 pilot, 2 BPSK, 4 QPSK, 8 8PSK)
     noise_bw_hz : float   one-sided loop noise bandwidth B_L, Hz
     damping : float       damping factor zeta (orders 2 and 3)
     loop_order : int      1, 2 or 3
     exact : bool          refine so the discrete loop's actual B_L equals the request
+    block : int or None   samples per loop update (a power of two); default
+                          :func:`update_block` of B_L T. The actual B_L is that of the loop
+                          updated once per block, half-block delay included.
     """
     validate_spec(sample_rate, power, noise_bw_hz, damping, loop_order)
     power, loop_order = int(power), int(loop_order)
     target = noise_bw_hz / sample_rate
+    block = update_block(target) if block is None else int(block)
+    if block < 1 or block & (block - 1):
+        raise ValueError(f"block must be a power of two >= 1, got {block!r}")
     design_bt = target
     if exact:
         def excess(bt):
-            return noise_bandwidth_bt(loop_gains(loop_order, bt, damping)) / target - 1.0
+            return noise_bandwidth_bt(loop_gains(loop_order, bt, damping), block) / target - 1.0
         lo = 0.25 * target
         hi = target
         while excess(hi) < 0.0:          # the mapping can also land low (order 1 never does)
             hi *= 1.25
         design_bt = optimize.brentq(excess, lo, hi, xtol=1e-15 * target, rtol=1e-13)
     g_gains = loop_gains(loop_order, design_bt, damping)
-    actual = noise_bandwidth_bt(g_gains)
+    actual = noise_bandwidth_bt(g_gains, block)
     if not np.isfinite(actual):
         raise ValueError(f"noise_bw_hz={noise_bw_hz!r} gives an unstable discrete loop at this sample rate")
     k1, k2, k3 = (gk / power for gk in padded_gains(g_gains))
     return LoopDesign(float(sample_rate), power, float(noise_bw_hz), float(damping), loop_order,
-                      design_bt, actual, g_gains, k1, k2, k3)
+                      design_bt, actual, g_gains, k1, k2, k3, block)

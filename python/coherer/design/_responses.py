@@ -88,7 +88,7 @@ def _error_state_matrix(g_gains):
     order, ``z = [phi, acc1, ..., acc_(d-1)]``, ``f`` the input phase increment per sample: the
     delta-form matrix of :func:`loop_state_matrices` with the phase state's sign flipped
     (``phi = theta - theta^``)."""
-    d, _ = loop_state_matrices(g_gains)
+    d, _, _ = loop_state_matrices(g_gains)
     d[0, 1:] = -d[0, 1:]
     d[1:, 0] = -d[1:, 0]
     return d

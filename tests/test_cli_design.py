@@ -77,8 +77,11 @@ def test_json_equals_design_module_and_references(coherer):
 
 def test_ramp_error_continuous_example(coherer):
     # REFERENCES 2.1 (Gardner, from memory): B_L 20 Hz, zeta 0.707, 10 Hz/s -> wn 37.7143 rad/s, 0.04417 rad.
-    # At B_L T = 2e-7 the discrete loop departs from the continuous one by ~B_L T, below the printed precision.
-    r = run_json(coherer, "--sample-rate", 1e8, "--power", 1, "--noise-bw", 20, "--doppler-rate", 10)
+    # At B_L T = 2e-7 the discrete loop updated every sample departs from the continuous one by ~B_L T, below
+    # the printed precision (the blocks would update it once per 64 samples, a departure of ~B_L L T).
+    r = run_json(coherer, "--sample-rate", 1e8, "--power", 1, "--noise-bw", 20, "--doppler-rate", 10,
+                 "--update-block", 1)
+    assert r["update_block"] == 1
     assert matches_printed(r["natural_frequency_rad_s"], "37.7143")
     assert matches_printed(r["ramp_phase_error_rad"], "0.04417")
 
@@ -90,7 +93,9 @@ def test_slip_worked_example_and_pull_in(coherer):
     assert matches_printed(10 ** (r["loop_snr_db"] / 10), "1.2593")
     # REFERENCES 2.2 (Rice App. C, secondary page): B_n 100 Hz, df 50 Hz -> 10 ms pull-in + 13 ms settling.
     # The tool reports Gardner's pull-in (M = 1, zeta 0.707) and Rice's rule beside it.
-    r = run_json(coherer, "--sample-rate", 1e6, "--power", 1, "--noise-bw", 100, "--offset", 50)
+    # (the continuous formulas: the loop updated every sample, B_L T = 1e-4)
+    r = run_json(coherer, "--sample-rate", 1e6, "--power", 1, "--noise-bw", 100, "--offset", 50,
+                 "--update-block", 1)
     assert r["pull_in_time_rice_s"] == pytest.approx(0.010, rel=1e-9)
     assert r["lock_time_s"] - r["pull_in_time_s"] == pytest.approx(0.013, rel=1e-9)
     # Gardner (from memory) = 4.16 df^2 / B_L^3 at zeta 0.707 (REFERENCES 2.2), i.e. 10.4 ms here (printed 3 digits)
@@ -171,6 +176,8 @@ def test_help_names_units(coherer):
     (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--rolloff", "nan"], "--rolloff"),
     (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--placement", "after"], "--placement"),
     (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--freq-step", "inf"], "--freq-step"),
+    (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--update-block", 12], "--update-block"),
+    (["--sample-rate", 1e4, "--power", 4, "--noise-bw", 10, "--update-block", 128], "--update-block"),
 ])
 def test_bad_arguments_exit_2_with_one_line(coherer, args, fragment):
     proc = coherer(*args)

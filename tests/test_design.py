@@ -164,6 +164,59 @@ def test_exact_bandwidth_equals_impulse_response_sum(order, bt, kaplan):
     assert design.noise_bandwidth_bt(gains) == pytest.approx(brute_force_bt(gains, n), rel=1e-9)
 
 
+def block_loop_phase(g_gains, block, theta_blocks):
+    """The loop updated once per block simulated sample by sample, written from its definition
+    (REFERENCES 1.4): within block k the NCO advances by acc1 per sample; at the block end the
+    mean of theta - theta^ over the block's samples moves acc2 += L gK3 e, acc1 += L gK2 e +
+    L acc2, and the block's last step is L gK1 e + acc1. ``theta_blocks`` is the carrier phase,
+    constant over each block. Returns the NCO phase averaged over each block."""
+    g1, g2, g3 = (tuple(g_gains) + (0.0, 0.0))[:3]
+    theta_hat = acc1 = acc2 = 0.0
+    means = np.empty(len(theta_blocks))
+    for k, th in enumerate(theta_blocks):
+        phases = theta_hat + acc1 * np.arange(block)
+        means[k] = phases.mean()
+        e = th - means[k]
+        acc2 += block * g3 * e
+        acc1 += block * g2 * e + block * acc2
+        theta_hat = phases[-1] + block * g1 * e + acc1
+    return means
+
+
+@pytest.mark.parametrize("order", [1, 2, 3])
+@pytest.mark.parametrize("block, bt", [(4, 0.005), (16, 1e-3), (64, 4e-4)])
+def test_block_loop_bandwidth_equals_its_impulse_response_sum(order, block, bt):
+    # REFERENCES 0 and 1.4: white detector noise averaged over a block of L samples has 1/L of
+    # its variance, so B_L T = sum h_k^2 / (2 L), h the response of the block-mean NCO phase to
+    # a unit impulse of the block-mean input phase; brute force by the simulation above.
+    gains = design.textbook_gains(order, bt, 0.707)
+    impulse = np.zeros(int(60 / (bt * block)))
+    impulse[0] = 1.0
+    h = block_loop_phase(gains, block, impulse)
+    assert abs(h[-1]) < 1e-9 * np.max(np.abs(h))          # the tail has died out
+    brute = float(np.sum(h ** 2)) / (2 * block)
+    assert design.noise_bandwidth_bt(gains, block) == pytest.approx(brute, rel=1e-9)
+
+
+@pytest.mark.parametrize("order", [1, 2, 3])
+@pytest.mark.parametrize("bt", [1e-5, 1e-3, 0.01, 0.1])
+def test_designed_block_loop_has_the_requested_bandwidth(order, bt):
+    """The blocks' design: the update block from B_L T (at most BLOCK_BT / B_L T samples, a
+    power of two, 1 for wide loops) and gains refined so that the loop updated once per block
+    has exactly the requested noise bandwidth."""
+    d = design.design_loop(1.0, 2, bt, 0.707, order)
+    assert d.block == design.update_block(bt)
+    assert d.block * bt <= design.BLOCK_BT or d.block == 1
+    assert d.block == design.MAX_UPDATE_BLOCK or 2 * d.block * bt > design.BLOCK_BT
+    assert d.actual_bt == pytest.approx(bt, rel=1e-9)
+    assert design.noise_bandwidth_bt(d.g_gains, d.block) == pytest.approx(bt, rel=1e-9)
+
+
+def test_update_block_rejects_a_block_that_is_not_a_power_of_two():
+    with pytest.raises(ValueError, match="power of two"):
+        design.design_loop(1.0, 2, 0.001, 0.707, 2, block=12)
+
+
 # --- exact designs ------------------------------------------------------------------------------
 
 def pole_radius(g_gains, order):
@@ -184,7 +237,8 @@ def pole_radius(g_gains, order):
 def test_exact_design_hits_requested_bandwidth(order, damping):
     for bt in (1e-5, 1e-3, 0.01, 0.05, 0.1):
         for fs, power in ((1.0, 1), (48000.0, 4)):
-            d = design.design_loop(fs, power, bt * fs, damping, order, exact=True)
+            # the loop updated every sample (block=1; update blocks: test_designed_block_loop_...)
+            d = design.design_loop(fs, power, bt * fs, damping, order, exact=True, block=1)
             # REFERENCES 0: the actual discrete bandwidth is the quantity to test, rel 1e-9
             assert d.actual_bt == pytest.approx(bt, rel=1e-9)
             radius = pole_radius(d.g_gains, order)
@@ -423,7 +477,7 @@ def test_linear_variance_check_values():
     assert var == pytest.approx(1.0e-3, rel=1e-12)
     assert matches_printed(math.degrees(math.sqrt(var)), "1.812")
     # REFERENCES 3: Es/N0 10 dB, design B_L T 0.005 (actual 0.00502) -> 5.02e-4 rad^2
-    d = design.design_loop(1.0, 1, 0.005, 0.707, 2, exact=False)
+    d = design.design_loop(1.0, 1, 0.005, 0.707, 2, exact=False, block=1)
     assert matches_printed(d.actual_bt, "0.00502")
     assert matches_printed(design.phase_error_variance(1, 10.0, d.actual_bt), "5.02e-4")
     assert matches_printed(design.phase_error_variance(1, design.db_to_linear(3.0), d.actual_bt), "2.517e-3")
@@ -563,7 +617,7 @@ def test_step_response_matches_continuous_loop(damping):
     # at small B_L T the discrete loop approaches the continuous H(s) of REFERENCES 1.1; scipy.signal.step of
     # that H gives the reference overshoot, rise and settling times (relative departure ~ B_L T, here 1e-4)
     fs, bl = 1e4, 1.0
-    d = design.design_loop(fs, 1, bl, damping, 2)
+    d = design.design_loop(fs, 1, bl, damping, 2, block=1)     # responses: see step_responses
     steps = design.step_responses(d)
     wn = design.natural_frequency(bl, damping)
     t = np.linspace(0.0, 40.0 / bl, 100001)
@@ -581,7 +635,7 @@ def test_first_order_step_response():
     # first-order loop H(s) = K/(s + K), K = 4 B_L (REFERENCES 1.3 order 1: B_n = w0/4): rise time ln 9 / K,
     # no overshoot, steady error dw / K after a frequency step
     fs, bl = 1e5, 10.0
-    d = design.design_loop(fs, 1, bl, 0.707, 1)
+    d = design.design_loop(fs, 1, bl, 0.707, 1, block=1)
     steps = design.step_responses(d)
     k = 4 * bl
     assert steps.phase_metrics.rise_time_s == pytest.approx(math.log(9) / k, rel=1e-3)
@@ -594,7 +648,7 @@ def test_magnitude_response_integrates_to_noise_bandwidth(order):
     # Parseval: integral_0^{fs/2} |H(f)|^2 df = 0.5 fs sum h^2 = B_L (REFERENCES 0); trapezoid rule on a dense
     # grid (scipy.integrate), rel 1e-4; and |H(0)| = 1 (0 dB)
     fs = 1000.0
-    d = design.design_loop(fs, 2, 5.0, 0.707, order)
+    d = design.design_loop(fs, 2, 5.0, 0.707, order, block=1)
     f = np.concatenate((np.linspace(0.0, 200.0, 400001), np.linspace(200.0, fs / 2, 100001)[1:]))
     power = 10 ** (design.closed_loop_magnitude_db(d, f) / 10)
     assert integrate.trapezoid(power, f) == pytest.approx(5.0, rel=1e-4)
@@ -645,8 +699,8 @@ def test_narrow_third_order_responses_scale_with_bandwidth():
     # continuous limit (REFERENCES 1.1/1.3): times scale as 1/B_L and overshoot is fixed when B_L T -> 0.
     # At B_L T = 1e-5 the closed-loop polynomial no longer resolves g K3 ~ 2e-15, so this checks the
     # simulation against a ten-times-wider loop instead (departure ~ B_L T, here < 1e-3)
-    wide = design.step_responses(design.design_loop(1e5, 1, 10.0, 0.707, 3))
-    narrow = design.step_responses(design.design_loop(1e5, 1, 1.0, 0.707, 3))
+    wide = design.step_responses(design.design_loop(1e5, 1, 10.0, 0.707, 3, block=1))
+    narrow = design.step_responses(design.design_loop(1e5, 1, 1.0, 0.707, 3, block=1))
     assert narrow.phase_metrics.overshoot_pct == pytest.approx(wide.phase_metrics.overshoot_pct, rel=2e-3)
     assert narrow.phase_metrics.settling_time_s == pytest.approx(10 * wide.phase_metrics.settling_time_s, rel=2e-3)
     assert narrow.peak_error_rad_per_hz == pytest.approx(10 * wide.peak_error_rad_per_hz, rel=2e-3)  # ~ dw / wn

@@ -55,6 +55,57 @@ def test_loop_bandwidth_independent_of_amplitude(amplitude):
     assert measured == pytest.approx(predicted, rel=0.10)
 
 
+#: Loop bandwidths B_L T of the checks across the loop's range: update blocks of 64, 64, 16, 1
+#: and 1 samples (coherer.design.update_block).
+BANDWIDTHS = [1e-4, 1e-3, 2e-2, 0.1]
+
+
+@pytest.mark.parametrize("bt", BANDWIDTHS)
+def test_phase_error_variance_matches_squaring_loss_across_bandwidths(bt):
+    # Source: squaring-loss model var = B_L T V_M / M^2 (REFERENCES 4), BPSK at 10 dB (M^2 var
+    # 0.04 at B_L T = 0.1, still the linear regime), the loop updated once per block (REFERENCES
+    # 1.4). Tolerance from the statistics: the error decorrelates over about 1/(2 B_L T)
+    # samples, so N samples hold about 2 N B_L T independent ones and the sample variance has a
+    # relative standard error sqrt(2 / (2 N B_L T)); 4 of those plus REFERENCES 4's 4.5 %
+    # linear-model error, and never tighter than the 10 % above.
+    n = min(8_000_000, max(1_000_000, int(2000 / bt)))
+    settle = int(20 / bt)
+    rng = np.random.default_rng(int(round(-math.log10(bt) * 10)))
+    offset = 1e-4                                      # cycles/sample; the NCO starts on it
+    theta = 0.7 + 2 * np.pi * offset * np.arange(settle + n)
+    x, _ = mpsk(rng, 2, settle + n, 10, theta)
+    run = run_loop(x, power=2, noise_bw_hz=bt, acquire=False, point_angle=0.0,
+                   freq_guess_hz=offset)
+    measured = np.var(wrapped_error(theta, run.ref, 2)[settle:])
+    predicted = coherer.design.phase_error_variance(2, 10.0, bt)
+    rel = max(0.10, 4 * math.sqrt(2 / (2 * n * bt)) + 0.045)
+    assert measured == pytest.approx(predicted, rel=rel), (measured, predicted, rel)
+
+
+@pytest.mark.parametrize("bt", [1e-5] + BANDWIDTHS)
+def test_ramp_error_is_the_exact_discrete_value_across_bandwidths(bt):
+    # Source: REFERENCES 2.1, exact final value alpha / (g K2), which the update block does not
+    # change (REFERENCES 1.4: in steady state the frequency register climbs L alpha per block,
+    # moved by L g K2 e). The ramp is set for a 0.03 rad error; it starts once the loop has
+    # closed on the still carrier (1000 samples, beyond the block's start-up) and lasts
+    # 60 / (B_L T) samples (settled after its first half; its frequency stays below
+    # 0.7 rad/sample, inside the NCO's range). At 50 dB the jitter std is below 1.2 mrad even
+    # at B_L T = 0.1, and the last half holds ~60 independent errors, so 4 standard errors of
+    # the mean stay inside the 2 % band.
+    d = coherer.design.design_loop(1.0, 2, bt)
+    alpha = 0.03 * d.g_gains[1]
+    start, ramp = 1000, int(60 / bt)
+    n = start + ramp
+    k = np.maximum(np.arange(n) - start, 0)
+    theta = 0.3 + alpha * k * k / 2
+    rng = np.random.default_rng(int(round(-math.log10(bt) * 10)) + 1)
+    x, _ = mpsk(rng, 2, n, 50, theta)
+    run = run_loop(x, power=2, noise_bw_hz=bt, acquire=False, loop_order=2)
+    assert run.block.loop_design().block == d.block
+    phi = wrapped_error(theta, run.ref, 2)[start + ramp // 2:]
+    assert np.mean(phi) == pytest.approx(0.03, rel=0.02)
+
+
 def test_frequency_estimate_unbiased():
     # Quiet case (30 dB, pilot-like QPSK at 48 kS/s): the frequency register's mean after
     # settling must equal the true offset; its jitter std is ~ a few hundredths of a Hz for

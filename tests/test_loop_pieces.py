@@ -84,7 +84,7 @@ def test_steer_nco_sets_the_frequency_and_moves_the_trackers_with_it():
     for name in ("freq", "ref_f", "prev_step", "free_f", "free_level"):
         assert fields[name] == f, name
     for name in ("acc2", "ref_r", "ref_a", "angle_counts", "win_steps", "free_a", "free_trend",
-                 "slow_im"):
+                 "slow_im", "since_steer"):
         assert fields[name] == 0.0, name
     assert fields["slow_re"] == 1.0
     ref = coast(st, 1000)

@@ -28,13 +28,20 @@ def chunk_stimulus():
 CHUNK_KW = dict(power=4, noise_bw_hz=0.02, tag_interval=777, point_angle=0.0)
 
 
-def test_same_output_and_tags_for_any_buffer_size():
+@pytest.mark.parametrize("noise_bw_hz", [0.02, 0.002])
+def test_same_output_and_tags_for_any_buffer_size(noise_bw_hz):
+    """Per-sample updates (B_L T = 0.02) and update blocks of 8 samples (0.002): buffers of
+    1 and 7 samples end calls inside blocks."""
     x = chunk_stimulus()
-    reference = run_loop(x, **CHUNK_KW)
-    assert reference.tags_with("cycle_slip"), "the stimulus must produce slip tags"
+    kw = dict(CHUNK_KW, noise_bw_hz=noise_bw_hz)
+    reference = run_loop(x, **kw)
+    assert reference.block.loop_design().block == (1 if noise_bw_hz == 0.02 else 8)
+    if noise_bw_hz == 0.02:
+        assert reference.tags_with("cycle_slip"), "the stimulus must produce slip tags"
     assert reference.block.acquisition_log(), "the stimulus must exercise acquisition"
+    assert reference.block.lock_log(), "the stimulus must exercise the lock indicator"
     for max_items in (1, 7, 100, 1023, 4095):
-        other = run_loop(x, max_items=max_items, **CHUNK_KW)
+        other = run_loop(x, max_items=max_items, **kw)
         for a, b in ((reference.out, other.out), (reference.ref, other.ref),
                      (reference.freq, other.freq), (reference.err, other.err)):
             np.testing.assert_array_equal(a, b)

@@ -1,18 +1,35 @@
 # SPDX-License-Identifier: GPL-3.0-or-later
-"""Per-sample kernel of the M-th power carrier loop (numba, releases the GIL).
+"""Kernel of the M-th power carrier loop (numba, releases the GIL): element-wise work per
+sample, the loop updated once per block.
 
 The kernel is a plain function of arrays: input samples, output arrays, a
 float64 ``state`` array (everything the loop remembers between calls) and a
 float64 ``params`` array (everything the block derives from its settings).
 Calling it on one long array or on any split of it gives identical results.
 
-Per sample n (x = input, theta^ = NCO phase, rad; v = NCO step, rad/sample)::
+The loop is updated once per update block of L samples (``params[P_BLOCK]``, a power of
+two from 1 to MAX_BLOCK that the designer picks from B_L T and includes in the gains; blocks
+are counted from the stream start). Within block k the NCO runs at one frequency: for the
+block's samples t = 0..L-1 (x = input, theta^ = NCO phase, rad; acc1 = frequency register,
+rad/sample)::
 
-    y      = x e^{-j theta^}                          corrected output
-    d      = (y_lim)^M e^{-j M point_angle}            M-th power detector
-    e      = Im(d) / A_M                               normalised: mean sin(M phi)
-    acc2  += K3 e ; acc1 += K2 e + acc2 ; v = K1 e + acc1
-    theta^ += v                                        (used from the next sample on)
+    theta^_t = theta^_k + t acc1                       NCO tables (block_tables)
+    y_t      = x_t e^{-j theta^_t}                      corrected output (corrected)
+    d_t      = (y_lim,t)^M e^{-j M point_angle}         M-th power detector (detector)
+    e_t      = Im(d_t) / A_M                            normalised: mean sin(M phi)
+
+and the sums over the block (block_sums) move, at its end, the loop filter and the NCO::
+
+    e = mean of e_t ; acc2 += L K3 e ; acc1 += L K2 e + L acc2   (loop_filter)
+    theta^_{k+1} = theta^_k + (L - 1) acc1_old + L K1 e + acc1    the block's last step
+
+which for L = 1 is the per-sample loop. The mean over the block sees the NCO's phase half a
+block late; the designer's state model includes that exactly (``coherer.design``,
+REFERENCES 1.4), so the noise bandwidth is the requested one. The block's sums are taken
+once it is whole, from its samples in order (a block cut by the end of a call is held in
+the state until the next), so they do not depend on where calls end. The moments, the line,
+the detector phasor's low-pass, both slip trackers and the lock windows are updated at block
+ends from those sums; their per-sample averages become the same averages of block means.
 
 ``A_M`` is the M-th power line: the component of d that drives the loop.
 While the loop's own lock indicator says locked, ``A_M = |<d>|``, the
@@ -36,13 +53,14 @@ averaged moments of |x|^2 and |x|^4, floored so that the gain boost
 a few tens of per cent otherwise, which is all acquisition needs. The loop
 stays open (the NCO coasts) for the first few hundred samples, until the
 moments have settled. The detector output is clipped so that one sample never
-moves the NCO phase by more than pi/M (half the M-domain ambiguity). The clip
+moves the NCO phase by more than pi/M (half the M-domain ambiguity), and its block mean so
+that one block's kick never does either. The per-sample clip
 sits at about 1.7 sqrt(rho_psi / (B_L T)) standard deviations of the detector
 noise (rho_psi the loop SNR of REFERENCES 5): more than 10 for rho_psi >= 2
 and B_L T <= 0.05, so it only acts on start-up transients and outliers.
 
-Robustness: a non-finite or exactly zero sample is a gap; the NCO coasts
-(theta^ += acc1), nothing else changes, and the output is 0. A sample whose
+Robustness: a non-finite or exactly zero sample is a gap; it adds nothing to the block's
+sums (a block of gaps only: the NCO coasts, theta^ += acc1), and its output is 0. A sample whose
 power exceeds ``LIMIT * M2`` is limited to that power (phase kept) before it
 reaches the moments and the detector, so one huge spike cannot upset the
 loop gain; a lasting level step of 6 dB or more (seen by a fast average over
@@ -101,13 +119,13 @@ Noise excursions that return before the thresholds are not counted. Sign:
 +1 means the NCO phase advanced by 2*pi/M relative to the carrier (the output
 constellation turned by -2*pi/M).
 
-Arithmetic (no per-sample transcendental function, pow, sqrt or division on the
-loop's path): the NCO keeps the phasors ``P = e^{j theta^}`` and ``P^M`` and
-advances them by complex multiplication with ``e^{j v}`` (``v`` the step relative
-to the frequency register at the last resync, a small angle, evaluated by a short
-series; libm beyond ``SMALL_ANGLE``); both are recomputed exactly from the float64
-phase accumulator every ``NCO_RESYNC`` samples of the stream, so neither phase nor
-magnitude can drift (worst case between resyncs: about 1e-12). The detector is
+Arithmetic (no per-sample transcendental function or pow): the NCO keeps the phasors
+``P = e^{j theta^}`` and ``P^M`` at the block start and turns them through the block by
+complex multiplication with ``e^{j acc1}`` (``e^{j nco_ref}`` times a short series of the
+small angle ``acc1 - nco_ref``, ``nco_ref`` the frequency register at the last resync;
+libm beyond ``SMALL_ANGLE``); both are recomputed exactly from the float64 phase
+accumulator every ``NCO_RESYNC`` samples of the stream, so neither phase nor magnitude can
+drift (worst case between resyncs: about 1e-12). The detector is
 ``d = z conj(P^M)`` with ``z = (x_lim / sqrt(M2))^M e^{-j M point_angle}``, which
 does not depend on the NCO. The normalisation (1/sqrt(M2), (S/M2)^(M/2), limiter
 level) is recomputed from the moments every ``NORM_BLOCK`` samples once they have
@@ -151,6 +169,8 @@ STATE_FIELDS = (
     ("fast_m2", 1, "fast exponential average of |x|^2 (level-step detector)"),
     ("win_steps", 1, "sum of NCO steps in this lock window, rad"),
     ("prev_step", 1, "mean NCO step of the previous window, rad/sample"),
+    ("since_steer", 1, "lock windows ended since the last re-steer (the two after it hold its "
+                       "pull-in, not a frequency rate)"),
     ("ref_age", 1, "lock windows since the slip reference started"),
     ("lp_re", 1, "low-passed unit detector phasor d/|d| (strong-signal slip tracker), real"),
     ("lp_im", 1, "... imaginary part"),
@@ -250,7 +270,7 @@ TWO_PI = 2.0 * np.pi
 NCO_RESYNC = 256                   # phasors recomputed exactly from the phase every this many samples
 SMALL_ANGLE = 2.0 ** -5            # series rotation for |angle| <= this (error < 6e-15 per step)
 NORM_BLOCK = 64                    # detector normalisation recomputed every this many samples...
-MW_SETTLED = 0.5                   # ...and every sample while the moment weight is below this
+MW_SETTLED = 0.5                   # ...and every block while the moment weight is below this
 SLIP_DEPARTURE = 0.75              # fraction of 2*pi/M that declares a slip
 #: the slip reference narrows in stages after lock: stage k lasts until this many windows
 REF_STAGE_END = (2.0, 6.0, 14.0)
@@ -299,6 +319,7 @@ def steer_nco(state, freq):
     state[S_REF_A] = 0.0
     state[S_WIN_STEPS] = 0.0
     state[S_PREV_STEP] = freq
+    state[S_SINCE_STEER] = 0.0
     state[S_FREE_F] = freq               # the lock statistic's reference follows too
     state[S_FREE_A] = 0.0
     state[S_FREE_LEVEL] = freq
@@ -890,6 +911,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     cap = state[S_CAP]
     win_steps = state[S_WIN_STEPS]
     prev_step = state[S_PREV_STEP]
+    since_steer = state[S_SINCE_STEER]
     ref_age = state[S_REF_AGE]
     lp_re = state[S_LP_RE]
     lp_im = state[S_LP_IM]
@@ -1108,6 +1130,12 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
             ref_age += 1.0
             mean_step = win_steps / lock_window
             slope = (mean_step - prev_step) / lock_window
+            # the window that begins at a re-steer holds the loop's pull-in: its mean step is
+            # not the carrier's frequency, nor its change against the window before a rate
+            steady = since_steer >= 1.0
+            if since_steer < 2.0:
+                slope = 0.0
+            since_steer += 1.0
             prev_step = mean_step
             free_level, free_trend, free_a, free_f = reference_rate(
                 mean_step, free_level, free_trend, nco_rel_re, nco_rel_im, strong, locked,
@@ -1135,7 +1163,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
                     ref_r = 0.0
                     slow_re = 1.0
                     slow_im = 0.0
-                    ref_f = mean_step + 0.5 * lock_window * slope
+                    ref_f = mean_step + 0.5 * lock_window * slope if steady else acc1
                     ref_a = acc2 if k3 > 0.0 else slope    # a 3rd-order loop knows the rate
                     ref_age = 0.0
             if locked != was_locked:
@@ -1208,6 +1236,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     state[S_CAP] = cap
     state[S_WIN_STEPS] = win_steps
     state[S_PREV_STEP] = prev_step
+    state[S_SINCE_STEER] = since_steer
     state[S_REF_AGE] = ref_age
     state[S_LP_RE] = lp_re
     state[S_LP_IM] = lp_im

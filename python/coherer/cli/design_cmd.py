@@ -29,7 +29,8 @@ DEFAULT_PULL_IN_BUDGET_S = 1.0
 # command-line option for each validate_spec argument, to name the option in error messages
 _OPTION_OF = {"sample_rate": "--sample-rate", "power": "--power", "noise_bw_hz": "--noise-bw",
               "damping": "--damping", "loop_order": "--loop-order", "samples_per_symbol": "--samples-per-symbol",
-              "rolloff": "--rolloff", "placement": "--placement", "modulation_index": "--modulation-index"}
+              "rolloff": "--rolloff", "placement": "--placement", "modulation_index": "--modulation-index",
+              "block": "--update-block"}
 
 
 def register(subparsers):
@@ -49,6 +50,9 @@ def register(subparsers):
     p.add_argument("--damping", type=float, default=0.707, metavar="Z",
                    help=f"damping factor zeta, orders 2 and 3 (0 < Z <= {design.MAX_DAMPING}; default 0.707)")
     p.add_argument("--loop-order", type=int, default=2, metavar="N", help="loop order 1, 2 or 3 (default 2)")
+    p.add_argument("--update-block", type=int, metavar="L",
+                   help="samples per loop update, a power of two up to 64 (default: what the blocks use, "
+                        "the longest with B_L L T <= 1/32; 1 updates every sample)")
     p.add_argument("--esn0", type=float, metavar="DB",
                    help="Es/N0 per symbol, dB: enables jitter, slip and acquisition-time predictions")
     p.add_argument("--samples-per-symbol", type=int, default=1, metavar="N",
@@ -98,7 +102,8 @@ def _option_error(exc):
 
 def _design_or_user_error(args, noise_bw):
     try:
-        return design.design_loop(args.sample_rate, args.power, noise_bw, args.damping, args.loop_order)
+        return design.design_loop(args.sample_rate, args.power, noise_bw, args.damping, args.loop_order,
+                                  block=args.update_block)
     except ValueError as exc:
         raise _option_error(exc) from None
 
@@ -157,7 +162,7 @@ def predictions(args):
         "sample_rate_hz": d.sample_rate, "power": d.power, "loop_order": d.loop_order, "damping": d.damping,
         "noise_bw_hz": d.noise_bw_hz, "bt": d.bt,
         "actual_noise_bw_hz": d.actual_bt * d.sample_rate, "actual_bt": d.actual_bt,
-        "design_bt": d.design_bt,
+        "design_bt": d.design_bt, "update_block": d.block,
         "k1": d.k1, "k2": d.k2, "k3": d.k3, "g_k1": g_gains[0], "g_k2": g_gains[1], "g_k3": g_gains[2],
         "natural_frequency_rad_s": d.natural_frequency,
         "natural_frequency_hz": d.natural_frequency / (2.0 * math.pi),
@@ -332,6 +337,8 @@ def format_text(r):
                 f"{_rad(r['requested_total_phase_error_rms_rad'])} rms)")
     row(f"  requested noise bandwidth B_L        {r['noise_bw_hz']:.6g} Hz (B_L T = {r['bt']:.4g})")
     row(f"  actual noise bandwidth (discrete)    {r['actual_noise_bw_hz']:.6g} Hz (B_L T = {r['actual_bt']:.4g})")
+    every = "every sample" if r["update_block"] == 1 else f"once per {r['update_block']} samples"
+    row(f"  loop filter updated                  {every}")
     gains = f"K1 = {r['k1']:.6g}" + (f", K2 = {r['k2']:.6g}" if order > 1 else "") \
         + (f", K3 = {r['k3']:.6g}" if order > 2 else "")
     row(f"  gains per unit detector gain         {gains}  (loop gain g = M)")

@@ -91,8 +91,8 @@ def design_loop(sample_rate, power, noise_bw_hz, damping=0.707, loop_order=2, ex
     power, loop_order = int(power), int(loop_order)
     target = noise_bw_hz / sample_rate
     block = update_block(target) if block is None else int(block)
-    if block < 1 or block & (block - 1):
-        raise ValueError(f"block must be a power of two >= 1, got {block!r}")
+    if block < 1 or block > MAX_UPDATE_BLOCK or block & (block - 1):
+        raise ValueError(f"block must be a power of two from 1 to {MAX_UPDATE_BLOCK}, got {block!r}")
     design_bt = target
     if exact:
         def excess(bt):

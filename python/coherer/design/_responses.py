@@ -142,6 +142,11 @@ def step_responses(design, n_samples=None, max_points=RESPONSE_POINTS):
     ones and keep full precision (the polynomial form of :func:`closed_loop` stops resolving
     ``g K3`` below B_L T ~ 1e-4). Agrees with ``scipy.signal.lfilter`` on :func:`closed_loop`
     where that is well conditioned.
+
+    These are the responses of the loop updated every sample with these gains. A design with
+    an update block (``design.block`` > 1) runs the same filter once per block; its responses
+    are these seen every block, shifted by the half-block delay, a difference of the order of
+    B_L L T (at most BLOCK_BT = 1/32). Its noise bandwidth and steady errors are exact.
     """
     n = response_length(design) if n_samples is None else int(n_samples)
     fs = design.sample_rate
@@ -180,7 +185,8 @@ def closed_loop_magnitude_db(design, freqs_hz):
     """Closed-loop gain ``20 log10 |H(e^{j 2 pi f / fs})|`` (dB) at the frequencies ``freqs_hz`` (Hz).
 
     Evaluated as ``z^-1 N(u) / (u^d + z^-1 N(u))`` with ``u = 1 - z^-1 = 2j sin(w/2) e^{-jw/2}``
-    (see :func:`closed_loop`), which keeps full precision for very narrow loops.
+    (see :func:`closed_loop`), which keeps full precision for very narrow loops. Like
+    :func:`step_responses`, this is the loop updated every sample.
     """
     w = 2.0 * pi * np.asarray(freqs_hz, dtype=float) / design.sample_rate
     z_inv = np.exp(-1j * w)

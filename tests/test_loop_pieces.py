@@ -443,13 +443,14 @@ def block_tables_reference(block, theta, freq, free_theta, free_f, free_a, power
     return p, p ** power, p ** power * np.conj(free)
 
 
+@pytest.mark.parametrize("block", [1, 2, 16, 64])
 @pytest.mark.parametrize("power", [1, 2, 8])
-def test_block_tables_are_the_nco_at_one_frequency(power):
+def test_block_tables_are_the_nco_at_one_frequency(power, block):
     """block_tables against np.exp of the phases (from the definition): the NCO phasor and its
     M-th power at the block's one frequency, and the NCO against the lock reference; to 1e-13
     (at most 64 complex products of unit phasors)."""
-    block, theta, nco_ref, freq, free_theta, free_f, free_a = 64, 0.3, 0.011, 0.0113, -1.1, 0.0109, 1e-7
-    tabs = np.empty((6, K.MAX_BLOCK))
+    theta, nco_ref, freq, free_theta, free_f, free_a = 0.3, 0.011, 0.0113, -1.1, 0.0109, 1e-7
+    tabs = np.empty((8, K.MAX_BLOCK))
     rf, rm = np.exp(1j * nco_ref), np.exp(1j * power * nco_ref)
     ph, free = np.exp(1j * theta), np.exp(1j * power * free_theta)
     nxt = K.block_tables(block, ph.real, ph.imag, (ph ** power).real, (ph ** power).imag,
@@ -478,7 +479,7 @@ def test_block_sums_are_the_sums_of_the_detector():
     x[11] = 9.0 * rms                                # p = 81 rms^2 > cap
     pm = np.exp(1j * rng.uniform(-np.pi, np.pi, block))
     rel = np.exp(1j * rng.uniform(-np.pi, np.pi, block))
-    tabs = np.zeros((6, K.MAX_BLOCK))
+    tabs = np.zeros((8, K.MAX_BLOCK))
     tabs[2, :block], tabs[3, :block] = pm.real, pm.imag
     tabs[4, :block], tabs[5, :block] = rel.real, rel.imag
     alpha = 1e-3

@@ -479,8 +479,9 @@ def noise_scale(ref):
     count = int(ref[_REF_COUNT])
     if count == 0:
         return 0.0, 0
-    values = np.sort(ref[_REF_RING:_REF_RING + count])
-    return np.sqrt(values[(count + 1) // 2 - 1]), count
+    lower = (count + 1) // 2 - 1             # the lower median's rank
+    values = np.partition(ref[_REF_RING:_REF_RING + count], lower)
+    return np.sqrt(values[lower]), count
 
 
 @njit(cache=True)

@@ -205,8 +205,17 @@ def test_set_freq_guess_re_steers_and_command_freq_does_too():
     tb.run()
     assert blk.frequency_hz() == pytest.approx(1500.0)
     blk._handle_command(pmt.to_pmt({"freq_hz": -700.0}))
+    # the stream is 10 samples into an update block (32 samples here): the NCO runs the block
+    # out at its frequency and takes the new one from the block's end on
+    block = blk.loop_design().block
+    assert block == 32
     tb2 = gr.top_block()
-    src2, snk2 = blocks.vector_source_c(x), blocks.vector_sink_c()
+    src2, snk2 = blocks.vector_source_c(np.zeros(block - 10 - 1, np.complex64)), blocks.vector_sink_c()
     tb2.connect(src2, blk, snk2)
     tb2.run()
+    assert blk.frequency_hz() == pytest.approx(1500.0)    # one sample of the block still to go
+    tb3 = gr.top_block()
+    src3, snk3 = blocks.vector_source_c(np.zeros(2, np.complex64)), blocks.vector_sink_c()
+    tb3.connect(src3, blk, snk3)
+    tb3.run()
     assert blk.frequency_hz() == pytest.approx(-700.0)

@@ -12,7 +12,7 @@ from scipy.signal import lfilter
 
 from gnuradio.coherer import _loop_kernel as K
 from gnuradio.coherer import design, lockstat
-from gnuradio.coherer.mth_power_loop_cc import _tracker_gains
+from gnuradio.coherer.mth_power_loop_cc import _tracker_gains, mth_power_loop_cc
 
 
 def wrap(a):
@@ -550,3 +550,28 @@ def test_steering_waits_for_a_block_boundary():
     assert K.block_remaining(st) == 0
     K.steer_nco(st, 0.01)
     assert st[K.S_FREQ] == 0.01
+
+
+def test_one_block_never_kicks_the_nco_by_more_than_pi_over_m():
+    """A whole update block of spikes in quadrature (power 100 x M2, the limiter's level, at
+    +90 degrees of the carrier: a detector output far beyond its clip) moves the NCO by at
+    most pi/M beyond its frequency (the clip of the block mean, e_max / L; the kernel's
+    contract: one update never moves the phase by more than half the M-domain ambiguity)."""
+    power, bt = 2, 1e-3
+    blk = mth_power_loop_cc(1.0, power, bt, acquire=False)
+    block = blk.loop_design().block
+    assert block == 16
+    n0 = 40_000                                       # a block boundary; moments settled
+    rng = np.random.default_rng(3)
+    x = np.exp(1j * 0.3) * np.ones(n0 + block) + 0.05 * (rng.standard_normal(n0 + block)
+                                                            + 1j * rng.standard_normal(n0 + block))
+    x[n0:] = 10.0 * np.exp(1j * (0.3 + np.pi / 2 / power))   # 45 deg: sin(M phi) = 1
+    x = x.astype(np.complex64)
+    out = np.empty_like(x)
+    st = blk._state
+    blk._run_kernel(x[:n0], out[:n0], st, blk._params, diag=None)
+    phase0, freq0 = st[K.S_PHASE], st[K.S_FREQ]
+    blk._run_kernel(x[n0:], out[n0:], st, blk._params, diag=None)
+    moved = np.angle(np.exp(1j * (st[K.S_PHASE] - phase0 - (block - 1) * freq0 - st[K.S_FREQ])))
+    assert abs(moved) <= np.pi / power + 1e-12
+    assert abs(moved) > 0.5 * np.pi / power              # the clip, not a small error, acted

@@ -138,9 +138,9 @@ the stream is chunked.
 import numpy as np
 from numba import njit
 
-from ._numeric import half_power, pair_power
+from ._numeric import SIMD_MATH, half_power, masked_sample, pair_power
 from .design import MAX_UPDATE_BLOCK
-from .lockstat import _SIMD_MATH, null_contrasts, quarter_start, update_lock
+from .lockstat import null_contrasts, quarter_start, update_lock
 
 # state[] and params[] layouts ------------------------------------------------------
 # Each layout is one list of (name, slots, meaning); the index of field ``name`` is the
@@ -716,7 +716,7 @@ def detector(xr, xi, g_rms, cap, rot_re, rot_im, q_re, q_im, power):
     return p, zr * q_re + zi * q_im, zi * q_re - zr * q_im
 
 
-@njit(cache=True, fastmath=_SIMD_MATH, error_model="numpy")
+@njit(cache=True, fastmath=SIMD_MATH, error_model="numpy")
 def block_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re, rot_im, power):
     """Sums over the samples of one whole update block, given as interleaved float32 I/Q
     ``xs``, against the block's NCO tables ``tabs`` (:func:`block_tables`). Gaps (non-finite
@@ -745,12 +745,7 @@ def block_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re
     s_fast = 0.0
     g_mag = g_rms * g_rms
     for t in range(xs.shape[0] // 2):
-        xr = np.float64(xs[2 * t])
-        xi = np.float64(xs[2 * t + 1])
-        p = xr * xr + xi * xi
-        ok = (p > 0.0) & (p < np.inf)
-        xr = xr if ok else 1.0
-        xi = xi if ok else 0.0
+        xr, xi, p, ok = masked_sample(xs, t)
         p, dr, di = detector(xr, xi, g_rms, cap, rot_re, rot_im, tabs[2, t], tabs[3, t], power)
         p = p if ok else 0.0
         dr = dr if ok else 0.0
@@ -785,17 +780,14 @@ def block_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re
             s_m2, s_m4, s_mw, s_fast)
 
 
-@njit(cache=True, fastmath=_SIMD_MATH, error_model="numpy")
+@njit(cache=True, fastmath=SIMD_MATH, error_model="numpy")
 def corrected(xs, outs, n0, t0, run, tabs):
     """``y = x e^{-j theta^}`` for ``run`` samples of interleaved float32 ``xs`` from sample
     ``n0``, block positions ``t0 + j`` of the NCO table, into interleaved float32 ``outs``; 0 for
     a gap. Returns the number of gaps."""
     gaps = 0.0
     for j in range(run):
-        xr = np.float64(xs[2 * (n0 + j)])
-        xi = np.float64(xs[2 * (n0 + j) + 1])
-        p = xr * xr + xi * xi
-        ok = (p > 0.0) & (p < np.inf)
+        xr, xi, _, ok = masked_sample(xs, n0 + j)
         c = tabs[0, t0 + j]
         s = tabs[1, t0 + j]
         outs[2 * (n0 + j)] = np.float32(xr * c + xi * s) if ok else np.float32(0.0)
@@ -818,11 +810,9 @@ def diagnostics(xs, ref, freq, err, n0, t0, run, tabs, f_now, g_rms, cap, rot_re
         if freq.shape[0] > 0:
             freq[i] = f_now
         if err.shape[0] > 0:
-            xr = np.float64(xs[2 * i])
-            xi = np.float64(xs[2 * i + 1])
-            p = xr * xr + xi * xi
+            xr, xi, _, ok = masked_sample(xs, i)
             err[i] = 0.0
-            if p > 0.0 and p < np.inf:
+            if ok:
                 _, dr, di = detector(xr, xi, g_rms, cap, rot_re, rot_im, tabs[2, t], tabs[3, t],
                                      power)
                 err[i] = np.arctan2(di, dr) * inv_power

@@ -6,6 +6,22 @@ import numpy as np
 from numba import njit
 
 
+#: fastmath flags of the vectorised sums: reassociation (so sums vectorise) without assuming
+#: finite values, since gaps are detected by their non-finite or zero power.
+SIMD_MATH = {"reassoc", "contract", "nsz", "arcp"}
+
+
+@njit(cache=True, inline="always", error_model="numpy")
+def masked_sample(xs, i):
+    """Sample ``i`` of interleaved float32 I/Q ``xs`` as ``(re, im, power, ok)`` in float64;
+    a gap (non-finite or exactly zero power, ``ok`` False) comes back as 0, branch-free."""
+    xr = np.float64(xs[2 * i])
+    xi = np.float64(xs[2 * i + 1])
+    p = xr * xr + xi * xi
+    ok = (p > 0.0) & (p < np.inf)
+    return (xr if ok else 0.0), (xi if ok else 0.0), (p if ok else 0.0), ok
+
+
 @njit(cache=True, inline="always")
 def pair_power(ur, ui, m):
     """``(ur + j ui)**m`` as a real pair, by repeated squaring (m a positive integer)."""

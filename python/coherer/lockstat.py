@@ -102,7 +102,7 @@ from numba import njit, vectorize
 from scipy import special, stats
 
 from . import _lock_factors
-from ._numeric import unit_pair_power
+from ._numeric import SIMD_MATH, masked_sample, unit_pair_power
 
 #: Per-window false-lock probability the default lock threshold is set for.
 DEFAULT_LOCK_P_FA = 1e-6
@@ -275,7 +275,6 @@ def unit_projection(z, power, rot):
 #: call starts, so a window's sums are the same whatever the stream's chunking.
 #: No ``nnan``/``ninf``: the gap test must see NaN and Inf. Inlined functions are
 #: compiled with their caller's flags, so ``window_sums`` carries them too.
-_SIMD_MATH = {"reassoc", "contract", "nsz", "arcp"}
 
 #: Fields of the per-window, per-phase sums written by :func:`window_sums`: in-phase and
 #: quadrature projection, |y|^2, |y|^4, valid count, then the in-phase (SUM_I0 + j) and
@@ -287,7 +286,7 @@ SUM_Q0 = 9
 SUM_FIELDS = 13
 
 
-@njit(cache=True, inline="always", fastmath=_SIMD_MATH, error_model="numpy")
+@njit(cache=True, inline="always", fastmath=SIMD_MATH, error_model="numpy")
 def _one_window(xs, power, rot_re, rot_im):
     """Sums (in-phase and quadrature projection, |y|^2, |y|^4, valid count) of one stretch
     given as interleaved float32 I/Q ``xs``. Branch-free (gaps are masked, not skipped)
@@ -298,13 +297,7 @@ def _one_window(xs, power, rot_re, rot_im):
     s_m4 = 0.0
     s_valid = 0.0
     for i in range(xs.shape[0] // 2):
-        zr = np.float64(xs[2 * i])
-        zi = np.float64(xs[2 * i + 1])
-        p = zr * zr + zi * zi
-        ok = (p > 0.0) & (p < np.inf)
-        zr = zr if ok else 0.0
-        zi = zi if ok else 0.0
-        p = p if ok else 0.0
+        zr, zi, p, ok = masked_sample(xs, i)
         ur, ui = unit_pair_power(zr, zi, p if ok else 1.0, power)
         s_i += ur * rot_re - ui * rot_im
         s_q += ur * rot_im + ui * rot_re
@@ -320,7 +313,7 @@ def quarter_start(j, window):
     return -((-j * window) // 4)
 
 
-@njit(cache=True, inline="always", fastmath=_SIMD_MATH, error_model="numpy")
+@njit(cache=True, inline="always", fastmath=SIMD_MATH, error_model="numpy")
 def _quartered_window(xs, power, rot_re, rot_im, window, out):
     """Sums of one window (interleaved float32 ``xs``) into ``out[:]`` (fields SUM_*),
     quarter by quarter."""
@@ -366,7 +359,7 @@ def _phased_window(x, power, rot_re, rot_im, sps, out):
             out[k, SUM_VALID] += 1.0
 
 
-@njit(nogil=True, cache=True, fastmath=_SIMD_MATH, error_model="numpy")
+@njit(nogil=True, cache=True, fastmath=SIMD_MATH, error_model="numpy")
 def window_sums(x, power, rot_re, rot_im, window, sps, sums):
     """Lock-statistic and moment sums of the whole windows of ``window`` samples in ``x``.
 

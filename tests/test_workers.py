@@ -215,3 +215,37 @@ def test_wire_byte_vectors_match_the_frameworks_own_conversion():
     assert json.loads(zlib.decompress(bytes(pmt.u8vector_elements(sent)))) == obj
     framework_made = pmt.to_pmt(np.frombuffer(zlib.compress(json.dumps(obj).encode()), dtype=np.uint8))
     assert wire.decode(framework_made) == obj
+
+
+def test_a_live_local_worker_gets_the_longer_first_answer_limit(capture, monkeypatch):
+    # A local process is watched for exits, so a slow start (framework import and kernel
+    # loading on a busy host) is given LOCAL_WORKER_START_S, not the remote WORKER_START_S.
+    # Here the "worker" is a live process that never answers: the run must wait the local
+    # limit, then fail naming it.
+    import sys
+
+    from gnuradio.coherer import spread
+    from gnuradio.coherer.cli import build_parser
+    from gnuradio.coherer.cli.carriers import plan
+    from gnuradio.coherer.cli.run import open_input, settings_from_args
+    monkeypatch.setattr(spread, "WORKER_START_S", 0.2)
+    monkeypatch.setattr(spread, "LOCAL_WORKER_START_S", 2.0)
+    args = build_parser().parse_args(["run", str(capture), "--power", "2", "--noise-bw",
+                                      str(NOISE_BW), *carrier_args()])
+    rec = open_input(args)
+    settings = settings_from_args(args)
+    plans = plan(args, rec, settings)
+    ep = f"tcp://127.0.0.1:{free_port()}"                  # nobody listens there
+    silent = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        t0 = time.monotonic()
+        with pytest.raises(spread.WorkerError, match="no answer in 2 s"):
+            spread.run_spread(rec, settings, plans, [ep], processes={ep: silent})
+        assert time.monotonic() - t0 >= 2.0
+        t0 = time.monotonic()
+        with pytest.raises(spread.WorkerError, match="no answer in 0.2 s"):
+            spread.run_spread(rec, settings, plans, [ep])           # a remote one: the short limit
+        assert time.monotonic() - t0 < 2.0
+    finally:
+        silent.kill()
+        silent.wait()

@@ -13,8 +13,10 @@ them to the capture with the same :func:`coherer.channels.to_capture`, so the
 events do not depend on how the carriers are spread.
 
 A worker that exits, reports a failure, or stays silent for
-``WORKER_SILENCE_S`` seconds (``WORKER_START_S`` before its first reply) ends
-the run with :class:`WorkerError`.
+``WORKER_SILENCE_S`` seconds (before its first reply: ``WORKER_START_S``, or
+``LOCAL_WORKER_START_S`` for a local process, which is watched for exits and on a
+busy host can take longer to import the framework and load its kernels) ends the
+run with :class:`WorkerError`.
 """
 
 import os
@@ -34,6 +36,9 @@ from .worker import STREAM_HWM, inbox, outbox
 WORKER_SILENCE_S = 5.0
 #: Time (s) a worker has to send its first reply (process start, kernel warm-up).
 WORKER_START_S = 20.0
+#: The same for a worker process started here: its exit is seen at once, so a slow
+#: start (framework import and kernel loading on a loaded host) is given more time.
+LOCAL_WORKER_START_S = 120.0
 #: Seconds between checks of the replies and the local worker processes.
 POLL_S = 0.02
 
@@ -139,8 +144,9 @@ def run_spread(rec, settings, plans, endpoints, progress=None, processes=None):
                 proc = processes.get(ep)
                 if proc is not None and proc.poll() is not None:
                     raise WorkerError(f"worker {ep} exited (status {proc.returncode}) during the run")
-                if heard[k] is None and now - t0 > WORKER_START_S:
-                    raise WorkerError(f"worker {ep} cannot be reached (no answer in {WORKER_START_S:g} s)")
+                start_s = WORKER_START_S if proc is None else LOCAL_WORKER_START_S
+                if heard[k] is None and now - t0 > start_s:
+                    raise WorkerError(f"worker {ep} cannot be reached (no answer in {start_s:g} s)")
                 if heard[k] is not None and now - heard[k] > WORKER_SILENCE_S:
                     raise WorkerError(f"worker {ep} stopped answering ({WORKER_SILENCE_S:g} s silent)")
             if progress is not None:
@@ -179,4 +185,4 @@ def _take(msg, by_id, heard, done, results, endpoints, now):
 
 
 __all__ = ["WorkerError", "start_local_workers", "stop_local_workers", "run_spread",
-           "WORKER_SILENCE_S", "WORKER_START_S"]
+           "WORKER_SILENCE_S", "WORKER_START_S", "LOCAL_WORKER_START_S"]

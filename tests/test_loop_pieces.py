@@ -440,25 +440,26 @@ def block_tables_reference(block, theta, freq, free_theta, free_f, free_a, power
     t = np.arange(block)
     p = np.exp(1j * (theta + t * freq))
     free = np.exp(1j * (power * free_theta + t * power * (free_f + free_a * 0.5 * (block - 1))))
-    return p, p ** power, p ** power * np.conj(free)
+    return p, p ** power, free
 
 
 @pytest.mark.parametrize("block", [1, 2, 16, 64])
 @pytest.mark.parametrize("power", [1, 2, 8])
 def test_block_tables_are_the_nco_at_one_frequency(power, block):
     """block_tables against np.exp of the phases (from the definition): the NCO phasor and its
-    M-th power at the block's one frequency, and the NCO against the lock reference; to 1e-13
-    (at most 64 complex products of unit phasors)."""
+    M-th power at the block's one frequency, and the lock reference turning at its own rate;
+    to 1e-13 (at most 64 complex products of unit phasors)."""
     theta, nco_ref, freq, free_theta, free_f, free_a = 0.3, 0.011, 0.0113, -1.1, 0.0109, 1e-7
-    tabs = np.empty((8, K.MAX_BLOCK))
+    tabs = np.empty((K.TABLE_ROWS, K.MAX_BLOCK))
     rf, rm = np.exp(1j * nco_ref), np.exp(1j * power * nco_ref)
     ph, free = np.exp(1j * theta), np.exp(1j * power * free_theta)
     nxt = K.block_tables(block, ph.real, ph.imag, (ph ** power).real, (ph ** power).imag,
                          free.real, free.imag, freq, nco_ref, rf.real, rf.imag, rm.real, rm.imag,
                          free_f, free_a, power, tabs)
-    p, pm, rel = block_tables_reference(block, theta, freq, free_theta, free_f, free_a, power)
+    p, pm, lock_ref = block_tables_reference(block, theta, freq, free_theta, free_f, free_a,
+                                             power)
     for got, want in ((tabs[0] + 1j * tabs[1], p), (tabs[2] + 1j * tabs[3], pm),
-                      (tabs[4] + 1j * tabs[5], rel)):
+                      (tabs[4] + 1j * tabs[5], lock_ref)):
         np.testing.assert_allclose(got[:block], want, rtol=0, atol=1e-13)
     want_next = np.exp(1j * (power * free_theta + block * power * (free_f + free_a * 0.5 * (block - 1))))
     assert abs(complex(*nxt) - want_next) < 1e-13
@@ -478,10 +479,11 @@ def test_block_sums_are_the_sums_of_the_detector():
     x[7] = 0.0
     x[11] = 9.0 * rms                                # p = 81 rms^2 > cap
     pm = np.exp(1j * rng.uniform(-np.pi, np.pi, block))
-    rel = np.exp(1j * rng.uniform(-np.pi, np.pi, block))
-    tabs = np.zeros((8, K.MAX_BLOCK))
+    lock_ref = np.exp(1j * rng.uniform(-np.pi, np.pi, block))
+    rel = pm * np.conj(lock_ref)                     # the NCO against the lock reference
+    tabs = np.zeros((K.TABLE_ROWS, K.MAX_BLOCK))
     tabs[2, :block], tabs[3, :block] = pm.real, pm.imag
-    tabs[4, :block], tabs[5, :block] = rel.real, rel.imag
+    tabs[4, :block], tabs[5, :block] = lock_ref.real, lock_ref.imag
     alpha = 1e-3
     wm, wf = np.zeros(K.MAX_BLOCK), np.zeros(K.MAX_BLOCK)
     K.block_coefficients(block, alpha, 1e-3, 1e-2, wm, wf)

@@ -148,6 +148,7 @@ from .lockstat import null_contrasts, quarter_start, update_lock
 # kernels see plain global ints and nothing is numbered by hand.
 REF_STAGES = 3   # settling stages of the slip reference (REF_STAGE_END)
 MAX_BLOCK = MAX_UPDATE_BLOCK   # longest update block, samples (a power of two dividing NCO_RESYNC)
+TABLE_ROWS = 6                 # NCO tables of a block: P, P^M, the lock reference (re, im each)
 
 STATE_FIELDS = (
     ("phase", 1, "theta^, rad, wrapped to [-pi, pi)"),
@@ -656,11 +657,10 @@ def block_tables(block, ph_re, ph_im, pm_re, pm_im, free_re, free_im, acc1, nco_
                  rm_re, rm_im, free_f, free_a, power, tabs):
     """The NCO over one update block at the frequency register ``acc1`` (rad/sample) from
     its phasors at the block start: ``tabs[0:2, t] = e^{j theta^}``, ``tabs[2:4, t] =
-    e^{j M theta^}`` and ``tabs[4:6, t]`` that against the lock statistic's reference (which
-    turns at its mean step over the block), t = 0..block-1; ``tabs[6:8]`` is scratch (the
-    reference). Four samples at a time (each phasor advanced by its fourth power), so the
-    products do not wait on each other. Returns the reference phasor at the next block
-    start."""
+    e^{j M theta^}`` and ``tabs[4:6, t]`` the lock statistic's reference (M domain, turning
+    at its mean step over the block), t = 0..block-1 (``tabs`` has TABLE_ROWS rows). Four
+    samples at a time (each phasor advanced by its fourth power), so the products do not
+    wait on each other. Returns the reference phasor at the next block start."""
     v = acc1 - nco_ref
     w_re, w_im = _rotate(rf_re, rf_im, v)
     wm_re, wm_im = _rotate(rm_re, rm_im, power * v)
@@ -672,7 +672,7 @@ def block_tables(block, ph_re, ph_im, pm_re, pm_im, free_re, free_im, acc1, nco_
         for t in range(block):
             tabs[0, t], tabs[1, t] = a_re, a_im
             tabs[2, t], tabs[3, t] = b_re, b_im
-            tabs[6, t], tabs[7, t] = c_re, c_im
+            tabs[4, t], tabs[5, t] = c_re, c_im
             a_re, a_im = _cmul(a_re, a_im, w_re, w_im)
             b_re, b_im = _cmul(b_re, b_im, wm_re, wm_im)
             c_re, c_im = _cmul(c_re, c_im, wf_re, wf_im)
@@ -689,14 +689,10 @@ def block_tables(block, ph_re, ph_im, pm_re, pm_im, free_re, free_im, acc1, nco_
         for t in range(0, block, 4):
             _turning(tabs, 0, t, a_re, a_im, w_re, w_im, w2_re, w2_im, w3_re, w3_im)
             _turning(tabs, 2, t, b_re, b_im, wm_re, wm_im, m2_re, m2_im, m3_re, m3_im)
-            _turning(tabs, 6, t, c_re, c_im, wf_re, wf_im, f2_re, f2_im, f3_re, f3_im)
+            _turning(tabs, 4, t, c_re, c_im, wf_re, wf_im, f2_re, f2_im, f3_re, f3_im)
             a_re, a_im = _cmul(a_re, a_im, w4_re, w4_im)
             b_re, b_im = _cmul(b_re, b_im, m4_re, m4_im)
             c_re, c_im = _cmul(c_re, c_im, f4_re, f4_im)
-    for t in range(block):
-        # the NCO against the reference: P^M conj(free)
-        tabs[4, t] = tabs[2, t] * tabs[6, t] + tabs[3, t] * tabs[7, t]
-        tabs[5, t] = tabs[3, t] * tabs[6, t] - tabs[2, t] * tabs[7, t]
     return c_re, c_im
 
 
@@ -707,10 +703,9 @@ def detector(xr, xi, g_rms, cap, rot_re, rot_im, q_re, q_im, power):
     e^{-j M point_angle} conj(q)`` against the NCO's ``q = e^{j M theta^}``, with ``rot =
     e^{-j M point_angle}``. Returns ``(limited power, d re, d im)``."""
     p = xr * xr + xi * xi
-    g = g_rms
-    if p > cap:
-        g = g_rms * np.sqrt(cap / p)
-        p = cap
+    over = p > cap                                   # selects, not branches: loops vectorise
+    g = g_rms * np.sqrt(cap / p) if over else g_rms
+    p = cap if over else p
     zr, zi = pair_power(xr * g, xi * g, power)
     zr, zi = zr * rot_re - zi * rot_im, zr * rot_im + zi * rot_re
     return p, zr * q_re + zi * q_im, zi * q_re - zr * q_im
@@ -722,8 +717,8 @@ def block_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re
     ``xs``, against the block's NCO tables ``tabs`` (:func:`block_tables`). Gaps (non-finite
     or zero samples) are masked, not skipped, so the loop vectorises. Returns the sums of: the
     normalised detector output ``Im(d) e_gain`` clipped to +-e_max; ``d`` (re, im); ``d/|d|``
-    (re, im); ``|d|^2``; the lock projection ``(d/|d|) rel`` (re, im); ``rel`` (the NCO against
-    the lock reference; re, im); and of the non-gap samples: their count, the count with
+    (re, im); ``|d|^2``; the lock projection ``(d/|d|) rel`` (re, im); ``rel = P^M conj(ref)``
+    (the NCO against the lock reference; re, im); and of the non-gap samples: their count, the count with
     ``|d| > 0``, the limited power ``p``, and with the moment weights ``p``, ``p^2``, 1, and
     with the level-step weights ``p``."""
     s_e = 0.0
@@ -756,8 +751,10 @@ def block_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re
         inv_mag = 1.0 / (mag if has else 1.0)
         ur = dr * inv_mag
         ui = di * inv_mag
-        rel_re = tabs[4, t]
-        rel_im = tabs[5, t]
+        # the NCO against the lock reference, P^M conj(free): computed here, where the loop
+        # only reads (a table row written for it would stop the loops vectorising)
+        rel_re = tabs[2, t] * tabs[4, t] + tabs[3, t] * tabs[5, t]
+        rel_im = tabs[3, t] * tabs[4, t] - tabs[2, t] * tabs[5, t]
         wm = weights_m[t] if ok else 0.0
         s_e += e
         s_dr += dr
@@ -785,13 +782,19 @@ def corrected(xs, outs, n0, t0, run, tabs):
     """``y = x e^{-j theta^}`` for ``run`` samples of interleaved float32 ``xs`` from sample
     ``n0``, block positions ``t0 + j`` of the NCO table, into interleaved float32 ``outs``; 0 for
     a gap. Returns the number of gaps."""
+    # views from the offsets first: indices from 0 need no wrap-around test, so the loop
+    # vectorises
+    x_run = xs[2 * n0:2 * (n0 + run)]
+    y_run = outs[2 * n0:2 * (n0 + run)]
+    c_run = tabs[0, t0:t0 + run]
+    s_run = tabs[1, t0:t0 + run]
     gaps = 0.0
     for j in range(run):
-        xr, xi, _, ok = masked_sample(xs, n0 + j)
-        c = tabs[0, t0 + j]
-        s = tabs[1, t0 + j]
-        outs[2 * (n0 + j)] = np.float32(xr * c + xi * s) if ok else np.float32(0.0)
-        outs[2 * (n0 + j) + 1] = np.float32(xi * c - xr * s) if ok else np.float32(0.0)
+        xr, xi, _, ok = masked_sample(x_run, j)
+        c = c_run[j]
+        s = s_run[j]
+        y_run[2 * j] = np.float32(xr * c + xi * s) if ok else np.float32(0.0)
+        y_run[2 * j + 1] = np.float32(xi * c - xr * s) if ok else np.float32(0.0)
         gaps += 0.0 if ok else 1.0
     return gaps
 
@@ -956,7 +959,7 @@ def mth_power_loop(x, out, ref, freq, err, marks, mark_freq, slip_at, slip_count
     outs = out.view(np.float32)
     held = state[S_HELD:S_HELD + 2 * MAX_BLOCK]       # a view: written in place
     held_f32 = np.empty(2 * MAX_BLOCK, np.float32)
-    tabs = np.empty((8, MAX_BLOCK))
+    tabs = np.empty((TABLE_ROWS, MAX_BLOCK))
     weights_m = np.empty(MAX_BLOCK)
     weights_f = np.empty(MAX_BLOCK)
     if block < 1:

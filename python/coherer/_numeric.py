@@ -22,16 +22,27 @@ def masked_sample(xs, i):
     return (xr if ok else 0.0), (xi if ok else 0.0), (p if ok else 0.0), ok
 
 
+#: Bits of the exponent the powers below handle: M up to 2**POWER_BITS - 1 (the package's
+#: M is at most 16).
+POWER_BITS = 5
+
+
 @njit(cache=True, inline="always")
 def pair_power(ur, ui, m):
-    """``(ur + j ui)**m`` as a real pair, by repeated squaring (m a positive integer)."""
+    """``(ur + j ui)**m`` as a real pair by repeated squaring, for an integer 1 <= m < 32.
+    Always POWER_BITS squarings, each factor taken or not by a select: no branch and no
+    loop of its own once unrolled, so a loop over samples that calls it vectorises even
+    when m is only known at run time (the same products in the same order as the
+    branching method, so the same bits)."""
     rr = 1.0
     ri = 0.0
-    while m > 0:
-        if m & 1:
-            rr, ri = rr * ur - ri * ui, rr * ui + ri * ur
+    for bit in range(POWER_BITS):
+        take = (m >> bit) & 1
+        nr = rr * ur - ri * ui
+        ni = rr * ui + ri * ur
+        rr = nr if take else rr
+        ri = ni if take else ri
         ur, ui = ur * ur - ui * ui, 2.0 * ur * ui
-        m >>= 1
     return rr, ri
 
 
@@ -60,29 +71,14 @@ def unit_pair_power(zr, zi, p, power):
 
 @njit(cache=True, inline="always")
 def half_power(u, m):
-    """u**(m/2) for a real u >= 0 and a positive integer m. M = 1, 2, 4, 8, 16 written
-    out; others by repeated squaring, one sqrt if m is odd."""
-    if m == 1:
-        return np.sqrt(u)
-    if m == 2:
-        return u
-    if m == 4:
-        return u * u
-    if m == 8:
-        u2 = u * u
-        return u2 * u2
-    if m == 16:
-        u2 = u * u
-        u4 = u2 * u2
-        return u4 * u4
+    """u**(m/2) for a real u >= 0 and an integer 1 <= m < 32: sqrt(u) if m is odd, times
+    u**(m//2) by repeated squaring, branch-free like :func:`pair_power` (for M = 1, 2, 4,
+    8, 16 the same bits as writing the products out)."""
+    root = np.sqrt(u) if m & 1 else 1.0
     result = 1.0
     base = u
     k = m >> 1
-    while k > 0:
-        if k & 1:
-            result *= base
-        base *= base
-        k >>= 1
-    if m & 1:
-        result *= np.sqrt(u)
-    return result
+    for bit in range(POWER_BITS - 1):
+        result = result * base if (k >> bit) & 1 else result
+        base = base * base
+    return result * root

@@ -406,3 +406,27 @@ def test_noise_reference_scales_with_the_noise_spectrum(power):
     assert vp * 2 * window > 3.0                    # the white-noise variance would be badly wrong
     sigma = 4 * np.sqrt(2 / k + 2 / d.size)
     assert 1.0 - sigma - 16 / 256 < d.var() / vp < 1.0 + sigma
+
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_noise_scale_is_the_lower_median_of_the_last_values(seed):
+    # Definition (the module docstring): the square root of the lower median of the last
+    # REFERENCE_VALUES finite squared contrasts; checked after every push against numpy's
+    # sort of them, over a ring that wraps about ten times, with NaNs (skipped) and with
+    # values that repeat exactly (so equal entries must leave the ordered copy correctly).
+    rng = np.random.default_rng(seed)
+    contrasts = rng.standard_normal(1200)
+    contrasts[rng.random(1200) < 0.1] = np.nan
+    repeat = rng.random(1200) < 0.2
+    contrasts[repeat] = rng.choice([0.5, -0.5, 1.25], repeat.sum())
+    ref = L.new_noise_reference()
+    history = []
+    for d in contrasts:
+        L.push_contrast(ref, d)
+        if np.isfinite(d):
+            history = (history + [d * d])[-L.REFERENCE_VALUES:]
+        scale, count = L.noise_scale(ref)
+        assert count == len(history)
+        want = np.sqrt(np.sort(history)[(len(history) + 1) // 2 - 1]) if history else 0.0
+        assert scale == want

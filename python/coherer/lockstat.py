@@ -164,8 +164,8 @@ def threshold_table(window, p_fa, threshold=None):
 
 def new_noise_reference():
     """An empty noise reference for :func:`update_lock`: [count, position, ring of
-    REFERENCE_VALUES squared null contrasts]."""
-    return np.zeros(REFERENCE_VALUES + 2)
+    REFERENCE_VALUES squared null contrasts, the same values in ascending order]."""
+    return np.zeros(2 * REFERENCE_VALUES + 2)
 
 
 def default_thresholds(window):
@@ -399,8 +399,15 @@ def window_sums(x, power, rot_re, rot_im, window, sps, sums):
 
 # --- the lock decision (shared by the lock detector and the loops' indicator) ---------
 
-# layout of the noise reference: [count, position, ring of REFERENCE_VALUES squared contrasts]
+# layout of the noise reference: [count, position, ring of REFERENCE_VALUES squared contrasts,
+# the ``count`` values held, in ascending order]
 _REF_COUNT, _REF_POS, _REF_RING = range(3)
+
+
+@njit(cache=True, inline="always")
+def _ring_length(ref):
+    """Values the noise reference ``ref`` holds at most (REFERENCE_VALUES)."""
+    return (ref.shape[0] - _REF_RING) // 2
 
 
 @njit(cache=True, inline="always")
@@ -473,8 +480,7 @@ def noise_scale(ref):
     if count == 0:
         return 0.0, 0
     lower = (count + 1) // 2 - 1             # the lower median's rank
-    values = np.partition(ref[_REF_RING:_REF_RING + count], lower)
-    return np.sqrt(values[lower]), count
+    return np.sqrt(ref[_REF_RING + _ring_length(ref) + lower]), count
 
 
 @njit(cache=True)
@@ -482,10 +488,27 @@ def push_contrast(ref, d):
     """Add one null contrast ``d`` (skipped unless finite) to the noise reference ``ref``."""
     if not np.isfinite(d):
         return
-    k = ref.shape[0] - _REF_RING
+    k = _ring_length(ref)
     count = int(ref[_REF_COUNT])
     pos = int(ref[_REF_POS])
-    ref[_REF_RING + pos] = d * d
+    v = d * d
+    ordered = ref[_REF_RING + k:_REF_RING + 2 * k]
+    held = count
+    if count == k:
+        # the ring is full: the value it overwrites leaves the ordered copy
+        old = ref[_REF_RING + pos]
+        j = 0
+        while j < held - 1 and ordered[j] != old:
+            j += 1
+        for i in range(j, held - 1):
+            ordered[i] = ordered[i + 1]
+        held -= 1
+    i = held
+    while i > 0 and ordered[i - 1] > v:       # insertion into the ordered copy
+        ordered[i] = ordered[i - 1]
+        i -= 1
+    ordered[i] = v
+    ref[_REF_RING + pos] = v
     ref[_REF_POS] = (pos + 1) % k
     if count < k:
         ref[_REF_COUNT] = count + 1

@@ -50,6 +50,8 @@ def test_quick_json_has_every_figure():
             assert math.isclose(row["flowgraph_vs_c"][clock],
                                 row["flowgraph"][clock]["median"] / row["c"][clock]["median"])
     assert result["framework_floor"]["wall"]["median"] > 0
+    # the plain per-sample recursion, for comparison: the same C loop updated every sample
+    assert all(result["c_per_sample"][clock]["median"] > 0 for clock in ("wall", "cpu"))
     assert result["two_chains"]["ratio"] > 0
     for key in ("latency", "detector_latency"):
         assert result[key]["construction_s"] > 0 and result[key]["first_output_s"] > 0

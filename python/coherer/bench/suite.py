@@ -48,6 +48,9 @@ TARGET_FEEDFORWARD_VS_C = 3.0
 
 # --- what is benchmarked ---------------------------------------------------------------
 
+#: The row the targets and the extra figures are about.
+SQUARING = "squaring loop (M=2)"
+
 def _loop(power, loop_order=2):
     def make():
         return mth_power_loop_cc(SAMPLE_RATE, power, NOISE_BW_HZ, loop_order=loop_order,
@@ -84,7 +87,7 @@ def block_specs():
     the lock detector gets behind a locked loop; a rotating input would make it
     change state, tag and publish a message at almost every window)."""
     specs = [
-        ("squaring loop (M=2)", 2, _squaring, True, None, "psk2"),
+        (SQUARING, 2, _squaring, True, None, "psk2"),
         ("phase-locked loop M=1", 1, _loop(1), True, None, "psk1"),
         ("M-th power loop M=4", 4, _loop(4), True, None, "psk4"),
         ("M-th power loop M=8", 8, _loop(8), True, None, "psk8"),
@@ -165,7 +168,7 @@ def run(quick=False, soak=False, soak_samples=SOAK_SAMPLES, progress=None):
         # first: a fresh block in a process that has not run the kernel yet
         say("first-sample latency")
         construction, latency = measure.first_sample_latency(_squaring, tmp / "psk2.cf32")
-        result["latency"] = {"block": "squaring loop (M=2)", "construction_s": construction,
+        result["latency"] = {"block": SQUARING, "construction_s": construction,
                              "first_output_s": latency}
         construction, latency = measure.first_sample_latency(_detector, tmp / "psk2.cf32")
         result["detector_latency"] = {"block": "lock detector (M=2, window 1024)",
@@ -194,6 +197,15 @@ def run(quick=False, soak=False, soak_samples=SOAK_SAMPLES, progress=None):
                                                    "cpu": [n / t / 1e6 for t in ref.cpu_seconds]})
                 c_by_power.setdefault(power, row["c"])
                 row["update_block"] = blk.loop_design().block
+                if name == SQUARING and "c_per_sample" not in result:
+                    # the plain per-sample recursion: the same C loop updated every sample
+                    every = blk._params.copy()
+                    every[K.P_BLOCK] = 1
+                    ref1 = creference.run_reference(exe, path, every, power,
+                                                    freq0=blk._state[K.S_FREQ], reps=reps)
+                    result["c_per_sample"] = measure.summarise_both(
+                        {"wall": [n / t / 1e6 for t in ref1.seconds],
+                         "cpu": [n / t / 1e6 for t in ref1.cpu_seconds]})
             row["flowgraph"] = measure.summarise_both(measure.flowgraph_rates(make, path, n, reps))
             row["c_compared"] = row["c"] or c_by_power.get(power)
             row["flowgraph_vs_c"] = _ratios(row["flowgraph"], row["c_compared"])
@@ -210,7 +222,7 @@ def run(quick=False, soak=False, soak_samples=SOAK_SAMPLES, progress=None):
         say("two chains vs one")
         one = measure.summarise_both(measure.flowgraph_rates(_squaring, tmp / "psk2.cf32", n, reps, 1))
         two = measure.summarise_both(measure.flowgraph_rates(_squaring, tmp / "psk2.cf32", n, reps, 2))
-        result["two_chains"] = {"block": "squaring loop (M=2)", "one_chain": one, "two_chains": two,
+        result["two_chains"] = {"block": SQUARING, "one_chain": one, "two_chains": two,
                                 "ratio": _ratio(two["wall"]["median"], one["wall"]["median"])}
 
         if soak:
@@ -235,7 +247,7 @@ def targets(result, judged=True):
                for clock, v in values.items()}
         checks.append({"check": what, "value": values, "target": target, "goal": goal, "met": met})
 
-    sq = rows.get("squaring loop (M=2)")
+    sq = rows.get(SQUARING)
     if sq:
         add("squaring loop in flowgraph / C loop", sq["flowgraph_vs_c"], TARGET_LOOP_VS_C)
         for name, label in (("phase-locked loop M=1", "M=1"), ("M-th power loop M=4", "M=4"),
@@ -319,6 +331,14 @@ def format_table(result):
         lines.append(f"loops at B_L = {result['noise_bw_hz']:g} Hz, {result['sample_rate']:g} "
                      f"samples/s: loop filter updated once per "
                      f"{' / '.join(str(b) for b in blocks)} samples")
+    if "c_per_sample" in result:
+        sq = next((r for r in result["blocks"] if r["block"] == SQUARING), None)
+        c1 = result["c_per_sample"]["wall"]["median"]
+        if sq is not None:
+            lines.append(f"the same C loop updated every sample (one sin/cos and one filter "
+                         f"update per sample): {_fig(result['c_per_sample']['wall'])} Msps; "
+                         f"{SQUARING} in a flowgraph / it = "
+                         f"{_r(_ratio(sq['flowgraph']['wall']['median'], c1))}")
     t = result["two_chains"]
     lines += ["", f"two chains on two cores ({t['block']}): {_fig(t['two_chains']['wall'])} Msps "
               f"together vs {_fig(t['one_chain']['wall'])} for one chain = {_r(t['ratio'])}"]

@@ -662,6 +662,22 @@ def test_magnitude_response_integrates_to_noise_bandwidth(order):
         assert design.closed_loop_3db_hz(d) == pytest.approx(4 * 5.0 / (2 * math.pi), rel=0.02)
 
 
+@pytest.mark.parametrize("order", [1, 2, 3])
+@pytest.mark.parametrize("block, bl", [(4, 5.0), (16, 1.0), (64, 0.3)])
+def test_block_loop_magnitude_response_integrates_to_its_noise_bandwidth(order, block, bl):
+    # Parseval (REFERENCES 0) for the loop updated once per block: the closed-loop gain from the
+    # carrier phase to the NCO phase, block mean included, integrates to the B_L that the
+    # Lyapunov closed form gives for that loop (computed another way: design's actual_bt);
+    # trapezoid rule on a dense grid (scipy.integrate), rel 1e-6; and 0 dB at f = 0
+    fs = 1000.0
+    d = design.design_loop(fs, 2, bl, 0.707, order, block=block)
+    assert d.block == block
+    f = np.concatenate((np.linspace(0.0, 200.0, 400001), np.linspace(200.0, fs / 2, 100001)[1:]))
+    power = 10 ** (design.closed_loop_magnitude_db(d, f) / 10)
+    assert integrate.trapezoid(power, f) == pytest.approx(d.actual_bt * fs, rel=1e-6)
+    assert design.closed_loop_magnitude_db(d, [0.0])[0] == pytest.approx(0.0, abs=1e-12)
+
+
 def test_suggest_noise_bw_minimises_total_error():
     fs, power, esn0, rate = 1e4, 4, design.db_to_linear(10.0), 200.0
     best = design.suggest_noise_bw(fs, power, esn0, rate)
@@ -680,7 +696,7 @@ def test_suggest_noise_bw_minimises_total_error():
 def test_step_responses_equal_lfilter_of_closed_loop(order):
     # reference: scipy.signal.lfilter on the closed-loop H(z) (REFERENCES 1.2 form), where it is well conditioned
     fs = 1000.0
-    d = design.design_loop(fs, 4, 5.0, 0.707, order)
+    d = design.design_loop(fs, 4, 5.0, 0.707, order, block=1)    # the per-sample loop's H(z)
     steps = design.step_responses(d, n_samples=5000, max_points=5000)     # every sample
     b, a = design.closed_loop(d.g_gains)
     n = np.arange(5000)
@@ -709,7 +725,7 @@ def test_narrow_third_order_responses_scale_with_bandwidth():
 
 def test_strided_responses_equal_every_sample_simulation():
     # the strided grid (delta-form matrix powers) returns the same samples as a sample-by-sample run
-    d = design.design_loop(1e4, 2, 3.0, 0.5, 3)
+    d = design.design_loop(1e4, 2, 3.0, 0.5, 3, block=1)
     n = 400000                                         # beyond the fast segment (40 / B_L T = 133333 samples)
     full = design.step_responses(d, n_samples=n, max_points=n)
     strided = design.step_responses(d, n_samples=n, max_points=4000)
@@ -719,6 +735,53 @@ def test_strided_responses_equal_every_sample_simulation():
     assert np.allclose(strided.freq_step_error, full.freq_step_error[index], rtol=0, atol=1e-12)
     assert np.allclose(strided.freq_step_nco, full.freq_step_nco[index], rtol=0, atol=1e-12)
     assert strided.phase_metrics.settling_time_s == pytest.approx(full.phase_metrics.settling_time_s, abs=34 / 1e4)
+
+
+def simulate_block_loop(g, block, theta, blocks):
+    """The linearised loop updated once per ``block`` samples, written out from its definition
+    (the loop kernel's docstring): within block k the NCO runs at acc1 from theta^_k; at the
+    block end its mean error e moves acc2 += L g3 e, acc1 += L g2 e + L acc2, and the block's
+    last NCO step is L g1 e + acc1. ``theta(t)`` is the carrier phase at sample t. Returns per
+    block: the NCO phase averaged over the block, the mean error, the NCO's mean step."""
+    g1, g2, g3 = (list(g) + [0.0, 0.0])[:3]
+    L = block
+    nco, acc1, acc2 = 0.0, 0.0, 0.0
+    out = np.empty((blocks, 3))
+    for k in range(blocks):
+        t = k * L + np.arange(L)
+        inside = nco + np.arange(L) * acc1
+        e = np.mean(theta(t) - inside)
+        acc1_old = acc1
+        acc2 += L * g3 * e
+        acc1 += L * g2 * e + L * acc2
+        step = (L - 1) * acc1_old + L * g1 * e + acc1
+        out[k] = inside.mean(), e, step / L
+        nco += step
+    return out
+
+
+@pytest.mark.parametrize("order", [1, 2, 3])
+@pytest.mark.parametrize("bt, block", [(5e-3, 4), (1e-3, 16), (2e-4, 64)])
+def test_block_loop_responses_equal_a_simulation_of_the_block_loop(order, bt, block):
+    # reference: the block loop run block by block in the test (simulate_block_loop, from the
+    # kernel's definition), against step_responses of a design updated once per block: the
+    # NCO's block-mean phase after a unit phase step, the mean error and the NCO's mean step
+    # after a 1 Hz frequency step, at every block start; to 1e-9 (the simulation's phase grows
+    # to about 2 pi f t)
+    fs = 1e4
+    d = design.design_loop(fs, 2, bt * fs, 0.707, order, block=block)
+    assert d.block == block
+    blocks = 3000
+    steps = design.step_responses(d, n_samples=blocks * block, max_points=blocks)
+    assert np.allclose(steps.time_s, block * np.arange(blocks) / fs, rtol=0, atol=1e-15)
+    f = 2 * np.pi / fs
+    phase = simulate_block_loop(d.g_gains, block, lambda t: np.ones(len(t)), blocks)
+    freq = simulate_block_loop(d.g_gains, block, lambda t: f * t, blocks)
+    assert np.allclose(steps.phase_step, phase[:, 0], rtol=0, atol=1e-9)
+    assert np.allclose(steps.freq_step_error, freq[:, 1], rtol=0, atol=1e-9)
+    assert np.allclose(steps.freq_step_nco, freq[:, 2] / f, rtol=0, atol=1e-9)
+    # and the final values of the block loop: the block-mean error f / gK1 (order 1), else 0
+    assert steps.error_final_rad_per_hz == pytest.approx(freq[-1, 1], abs=1e-6 * abs(freq[:, 1]).max())
 
 
 @pytest.mark.parametrize("n", [1, 2, 3, 4, 9])

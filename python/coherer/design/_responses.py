@@ -24,8 +24,9 @@ RESPONSE_POINTS = 4096
 
 def response_length(design):
     """Samples needed to watch the step responses settle (see :data:`RESPONSE_TIME_CONSTANTS`)."""
-    r = float(np.max(np.abs(closed_loop_poles(design.g_gains))))
-    tau = -1.0 / np.log(max(r, 1e-300))
+    block = design.block
+    r = float(np.max(np.abs(closed_loop_poles(design.g_gains, block))))
+    tau = -block / np.log(max(r, 1e-300))          # samples
     return int(max(np.ceil(RESPONSE_TIME_CONSTANTS * tau), 256))
 
 
@@ -83,12 +84,12 @@ class StepResponses:
     error_settling_time_s: float    #: |phi - final| within SETTLING_BAND of the peak from then on
 
 
-def _error_state_matrix(g_gains):
-    """``D`` with ``z[n+1] = (I + D) z[n] + [f, 0, ..., 0]`` for the linearised loop in the kernel's
-    order, ``z = [phi, acc1, ..., acc_(d-1)]``, ``f`` the input phase increment per sample: the
-    delta-form matrix of :func:`loop_state_matrices` with the phase state's sign flipped
-    (``phi = theta - theta^``)."""
-    d, _, _ = loop_state_matrices(g_gains)
+def _error_state_matrix(g_gains, block=1):
+    """``D`` with ``z[k+1] - z* = (I + D) (z[k] - z*)`` for the linearised loop updated once
+    per ``block`` samples, ``z = [phi, acc1, ..., acc_(d-1)]`` at a block start (``phi = theta
+    - theta^``) and ``z*`` its fixed point under the input: the delta-form matrix of
+    :func:`loop_state_matrices` with the phase state's sign flipped."""
+    d, _, _ = loop_state_matrices(g_gains, block)
     d[0, 1:] = -d[0, 1:]
     d[1:, 0] = -d[1:, 0]
     return d
@@ -143,35 +144,48 @@ def step_responses(design, n_samples=None, max_points=RESPONSE_POINTS):
     ``g K3`` below B_L T ~ 1e-4). Agrees with ``scipy.signal.lfilter`` on :func:`closed_loop`
     where that is well conditioned.
 
-    These are the responses of the loop updated every sample with these gains. A design with
-    an update block (``design.block`` > 1) runs the same filter once per block; its responses
-    are these seen every block, shifted by the half-block delay, a difference of the order of
-    B_L L T (at most BLOCK_BT = 1/32). Its noise bandwidth and steady errors are exact.
+    A design with an update block (``design.block`` = L > 1) is the loop it describes, updated
+    once per block (the model of :func:`loop_state_matrices`), seen at block starts: the phase
+    response is the NCO phase averaged over the block, the error the block's mean phase error
+    (what the loop filter sees), the NCO frequency its mean step over the block; the grid
+    strides in whole blocks. For L = 1 these are the per-sample values.
     """
     n = response_length(design) if n_samples is None else int(n_samples)
     fs = design.sample_rate
-    d = _error_state_matrix(design.g_gains)
+    block = design.block
+    d = _error_state_matrix(design.g_gains, block)
     order = d.shape[0]
+    half = 0.5 * (block - 1)                   # the block mean sits half a block after its start
     f = 2.0 * pi / fs                          # 1 Hz frequency step, rad/sample
     phase_start = np.zeros(order)              # phase step: z0 = [1, 0, 0] decays to 0
     phase_start[0] = 1.0
     final_error = design.frequency_step_error(1.0)
     fixed = np.zeros(order)                    # frequency step from z = 0 to the fixed point: the
-    fixed[0] = final_error                     # first integrator holds f (phi = 0); without one
-    fixed[1:2] = f                             # (order 1) the phase error does, phi = f / gK1
+    fixed[1:2] = f                             # first integrator holds f (mean error 0); without
+    if order == 1:                             # one (order 1) the mean error holds f / gK1
+        fixed[0] = final_error - half * f
     index, phase_rows, freq_rows = [], [], []
-    for stride, points in _response_grid(n, design.actual_bt, max_points):
+    for stride, points in _response_grid(-(-n // block), design.actual_bt * block, max_points):
         d_step = _delta_power(d, stride)
         index.append(stride * np.arange(points))
         phase_rows.append(_free_response(d_step, phase_start, points))
-        freq_rows.append(fixed + _free_response(d_step, -fixed, points))
+        freq_rows.append(_free_response(d_step, -fixed, points))
     index, first = np.unique(np.concatenate(index), return_index=True)
     phase_state = np.concatenate(phase_rows)[first]
-    freq_state = np.concatenate(freq_rows)[first]
-    t = index / fs
-    phase = 1.0 - phase_state[:, 0]                                  # theta^ per unit phase step
-    error = freq_state[:, 0]                                         # phi, rad per Hz of step
-    nco = (sum(design.g_gains) * error + freq_state[:, 1:].sum(axis=1)) / f   # NCO step v[n] per unit step
+    freq_offset = np.concatenate(freq_rows)[first]          # z - z* of the frequency step
+    freq_state = fixed + freq_offset
+    t = index * block / fs
+
+    def mean_error(z, carrier_step):
+        """Block-mean phase error: phi at the block start plus half a block of the carrier's
+        step against the NCO's (which, without a frequency register, does not move)."""
+        nco_step = z[:, 1] if order > 1 else 0.0
+        return z[:, 0] + half * (carrier_step - nco_step)
+
+    phase = 1.0 - mean_error(phase_state, 0.0)                      # theta^ per unit phase step
+    error = mean_error(freq_state, f)                                # phi, rad per Hz of step
+    # the NCO's mean step over the block: the carrier's, less the growth of phi over the block
+    nco = 1.0 - (freq_offset @ d[0]) / (f * block)
     i_peak = int(np.argmax(np.abs(error)))
     peak = float(abs(error[i_peak]))
     return StepResponses(
@@ -181,21 +195,45 @@ def step_responses(design, n_samples=None, max_points=RESPONSE_POINTS):
         error_settling_time_s=_settling_time(t, error, final_error, SETTLING_BAND * peak))
 
 
-def closed_loop_magnitude_db(design, freqs_hz):
-    """Closed-loop gain ``20 log10 |H(e^{j 2 pi f / fs})|`` (dB) at the frequencies ``freqs_hz`` (Hz).
+def _det(m):
+    """Determinants of a stack of small square matrices ``m[..., d, d]`` (Laplace expansion
+    along the first row; d is at most the loop order, 3)."""
+    d = m.shape[-1]
+    if d == 1:
+        return m[..., 0, 0]
+    total = 0.0
+    for j in range(d):
+        minor = np.delete(np.delete(m, 0, axis=-2), j, axis=-1)
+        total = total + (-1) ** j * m[..., 0, j] * _det(minor)
+    return total
 
-    Evaluated as ``z^-1 N(u) / (u^d + z^-1 N(u))`` with ``u = 1 - z^-1 = 2j sin(w/2) e^{-jw/2}``
-    (see :func:`closed_loop`), which keeps full precision for very narrow loops. Like
-    :func:`step_responses`, this is the loop updated every sample.
+
+def closed_loop_magnitude_db(design, freqs_hz):
+    """Closed-loop gain ``20 log10 |H(f)|`` (dB) from the carrier phase to the NCO phase, at
+    the frequencies ``freqs_hz`` (Hz), for the loop updated once per ``design.block`` = L
+    samples (L = 1: every sample).
+
+    ``H = A_L(w) C ((e^{j w L} - 1) I - Delta)^-1 B`` with the block model of
+    :func:`loop_state_matrices` and ``A_L(w) = sin(w L / 2) / (L sin(w / 2))``, the gain of the
+    block mean, ``w = 2 pi f / fs``; solved by Cramer's rule with ``e^{j w L} - 1`` written as
+    ``2j sin(w L / 2) e^{j w L / 2}``, so very narrow loops keep full precision. For L = 1 this
+    is ``z^-1 N(u) / (u^d + z^-1 N(u))`` of :func:`closed_loop`.
     """
+    block = design.block
     w = 2.0 * pi * np.asarray(freqs_hz, dtype=float) / design.sample_rate
-    z_inv = np.exp(-1j * w)
-    u = 2j * np.sin(w / 2.0) * np.exp(-0.5j * w)
-    g = gain_vector(design.g_gains)
-    order = len(g)
-    n_u = sum(g[i] * u ** (order - 1 - i) for i in range(order))
-    h = z_inv * n_u / (u ** order + z_inv * n_u)
-    return 20.0 * np.log10(np.maximum(np.abs(h), 1e-300))
+    delta, b, c = loop_state_matrices(design.g_gains, block)
+    order = len(b)
+    u = 2j * np.sin(w * block / 2.0) * np.exp(0.5j * w * block)
+    m = u[:, None, None] * np.eye(order) - delta
+    det = _det(m)
+    h = np.zeros(len(w), dtype=complex)
+    for i in range(order):                      # Cramer's rule: column i replaced by B
+        if c[i] != 0.0:
+            mi = m.copy()
+            mi[:, :, i] = b
+            h = h + c[i] * _det(mi) / det
+    mean_gain = np.sinc(w * block / (2.0 * pi)) / np.sinc(w / (2.0 * pi))
+    return 20.0 * np.log10(np.maximum(np.abs(h * mean_gain), 1e-300))
 
 
 def closed_loop_peaking_db(design):

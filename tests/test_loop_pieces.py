@@ -443,13 +443,16 @@ def block_tables_reference(block, theta, freq, free_theta, free_f, free_a, power
     return p, p ** power, free
 
 
+@pytest.mark.parametrize("carrier", [0.0, 0.3])
 @pytest.mark.parametrize("block", [1, 2, 16, 64])
 @pytest.mark.parametrize("power", [1, 2, 8])
-def test_block_tables_are_the_nco_at_one_frequency(power, block):
+def test_block_tables_are_the_nco_at_one_frequency(power, block, carrier):
     """block_tables against np.exp of the phases (from the definition): the NCO phasor and its
     M-th power at the block's one frequency, and the lock reference turning at its own rate;
-    to 1e-13 (at most 64 complex products of unit phasors)."""
-    theta, nco_ref, freq, free_theta, free_f, free_a = 0.3, 0.011, 0.0113, -1.1, 0.0109, 1e-7
+    to 1e-13 (at most 64 complex products of unit phasors); near the carrier and 0.3 rad per
+    sample (a large offset) away from it."""
+    theta, free_theta, free_a = 0.3, -1.1, 1e-7
+    nco_ref, freq, free_f = 0.011 + carrier, 0.0113 + carrier, 0.0109 + carrier
     tabs = np.empty((K.TABLE_ROWS, K.MAX_BLOCK))
     rf, rm = np.exp(1j * nco_ref), np.exp(1j * power * nco_ref)
     ph, free = np.exp(1j * theta), np.exp(1j * power * free_theta)

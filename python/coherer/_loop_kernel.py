@@ -664,7 +664,9 @@ def block_tables(block, ph_re, ph_im, pm_re, pm_im, free_re, free_im, acc1, nco_
     v = acc1 - nco_ref
     w_re, w_im = _rotate(rf_re, rf_im, v)
     wm_re, wm_im = _rotate(rm_re, rm_im, power * v)
-    wf_re, wf_im = _rotate(1.0, 0.0, power * (free_f + free_a * 0.5 * (block - 1)))
+    # the reference's step against the NCO's reference frequency: a small angle (the series,
+    # not libm) whenever the reference runs near the NCO, whatever the carrier offset
+    wf_re, wf_im = _rotate(rm_re, rm_im, power * (free_f + free_a * 0.5 * (block - 1) - nco_ref))
     a_re, a_im = ph_re, ph_im
     b_re, b_im = pm_re, pm_im
     c_re, c_im = free_re, free_im

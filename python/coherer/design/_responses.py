@@ -137,9 +137,10 @@ def step_responses(design, n_samples=None, max_points=RESPONSE_POINTS):
     """Phase-step and 1 Hz frequency-step responses of the linearised discrete loop with the
     design's ``g_gains``, over ``n_samples`` samples (default :func:`response_length`).
 
-    Exact at the returned samples: every ``stride``-th sample, at most ``max_points`` over the
-    first ``FAST_WINDOW_BT / (B_L T)`` samples and as many again over the whole window. The loop
-    is advanced by ``(I + D)^stride`` in delta form, so very narrow loops cost no more than wide
+    Exact at the returned samples: every ``stride``-th update (every ``stride``-th sample for a
+    loop updated every sample), at most ``max_points`` over the first ``FAST_WINDOW_BT / (B_L
+    T)`` samples and as many again over the whole window. The loop is advanced by
+    ``(I + D)^stride`` in delta form, so very narrow loops cost no more than wide
     ones and keep full precision (the polynomial form of :func:`closed_loop` stops resolving
     ``g K3`` below B_L T ~ 1e-4). Agrees with ``scipy.signal.lfilter`` on :func:`closed_loop`
     where that is well conditioned.

@@ -6,8 +6,10 @@ import numpy as np
 from numba import njit
 
 
-#: fastmath flags of the vectorised sums: reassociation (so sums vectorise) without assuming
-#: finite values, since gaps are detected by their non-finite or zero power.
+#: fastmath flags of the vectorised sums: reassociation lets a sum use SIMD lanes. Its
+#: grouping then depends only on a sample's position in its window or block, never on where
+#: a call starts, so the sums are the same whatever the stream's chunking. No ``nnan`` /
+#: ``ninf``: gaps are detected by their non-finite or zero power.
 SIMD_MATH = {"reassoc", "contract", "nsz", "arcp"}
 
 

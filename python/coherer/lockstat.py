@@ -270,11 +270,8 @@ def unit_projection(z, power, rot):
     return ur * rot.real - ui * rot.imag, True
 
 
-#: numba flags of the window sums: reassociation lets the sums use SIMD lanes. The
-#: grouping then depends only on a sample's position in its window, never on where a
-#: call starts, so a window's sums are the same whatever the stream's chunking.
-#: No ``nnan``/``ninf``: the gap test must see NaN and Inf. Inlined functions are
-#: compiled with their caller's flags, so ``window_sums`` carries them too.
+# The window sums run with ``_numeric.SIMD_MATH``; inlined functions are compiled with
+# their caller's flags, so ``window_sums`` carries them too.
 
 #: Fields of the per-window, per-phase sums written by :func:`window_sums`: in-phase and
 #: quadrature projection, |y|^2, |y|^4, valid count, then the in-phase (SUM_I0 + j) and

@@ -9,7 +9,6 @@ import numpy as np
 from scipy import optimize
 
 from ._bandwidth import closed_loop_poles, loop_state_matrices
-from ._gains import gain_vector
 
 
 # --- transient responses of the discrete loop ---------------------------------------------------

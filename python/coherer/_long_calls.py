@@ -13,9 +13,12 @@ call to fill: a slow live stream still gets small, prompt calls.
 #: Items of history each Python block declares (calls of up to this many samples).
 #: Of 32768, 65536 and 131072, the largest gave the highest rates on the 2-core
 #: benchmark machine (file source -> block -> null sink, 4M samples: copy block
-#: 87 / 130 / 185 Msps, lock detector 74 / 105 / 124 Msps). Memory: about 2 MB per
+#: 87 / 130 / 185 Msps, lock detector 74 / 105 / 124 Msps). Later, with faster kernels
+#: (16M samples, three runs each): 2**18 against 2**17 gave the lock detector 182-193
+#: against 125-129 Msps, the feed-forward block 102-105 against 91-96, the squaring
+#: loop 62-65 against 47-64; 2**19 and 2**20 were no faster. Memory: about 4 MB per
 #: output buffer (complex64).
-CALL_ITEMS = 1 << 17
+CALL_ITEMS = 1 << 18
 
 
 def request_long_calls(block, items=CALL_ITEMS, multiple=1):

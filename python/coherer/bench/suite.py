@@ -366,5 +366,5 @@ def format_table(result):
             line += "  " + " / ".join({True: "met", False: "not met", None: "n/a"}[c["met"][k]]
                                       for k in CLOCKS if k in c["met"])
         lines.append(line)
-    lines.append(f"\nbench took {result['elapsed_s']:.0f} s")
+    lines.append(f"\nbench took {result['elapsed_s']:.3g} s")
     return "\n".join(lines)

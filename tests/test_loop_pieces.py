@@ -468,19 +468,24 @@ def test_block_tables_are_the_nco_at_one_frequency(power, block, carrier):
     assert abs(complex(*nxt) - want_next) < 1e-13
 
 
-def test_block_sums_are_the_sums_of_the_detector():
-    """block_sums on a QPSK block with a gap (NaN), a zero and a spike beyond the limiter,
-    against the same quantities computed with numpy from their definitions: the limited
-    sample x min(1, sqrt(cap/p)), d = (x_lim / rms)^M e^{-j M point_angle} conj(P^M), the
-    clipped normalised error, d/|d|, the lock projection (d/|d|) rel and the position-weighted
-    moments; to 1e-12 relative."""
+@pytest.mark.parametrize("spike", [True, False])
+@pytest.mark.parametrize("power", [1, 2, 3, 4, 8, 16])
+def test_block_sums_are_the_sums_of_the_detector(power, spike):
+    """block_sums on a QPSK block with a gap (NaN), a zero and (or not) a spike beyond the
+    limiter, against the same quantities computed with numpy from their definitions: the
+    limited sample x min(1, sqrt(cap/p)), d = (x_lim / rms)^M e^{-j M point_angle} conj(P^M),
+    the clipped normalised error, d/|d|, the lock projection (d/|d|) rel and the
+    position-weighted moments; to 1e-12 relative. M = 1, 2, 4, 8 are summed with M compiled
+    in, 3 and 16 with M at run time; with no spike the limiter is left out."""
     rng = np.random.default_rng(5)
-    power, block, rms, cap, e_gain, e_max = 4, 32, 1.3, 20.0, 0.7, 0.5
+    block, rms, cap, e_gain, e_max = 32, 1.3, 20.0, 0.7, 0.5
     x, _ = qpsk_detector(rng, block, 10.0, 0.2)
     x = (x * rms).astype(np.complex64)
     x[3] = np.nan
     x[7] = 0.0
-    x[11] = 9.0 * rms                                # p = 81 rms^2 > cap
+    if spike:
+        x[11] = 9.0 * rms                            # p = 81 rms^2 > cap
+    assert (np.nanmax(np.abs(x) ** 2) > cap) == spike
     pm = np.exp(1j * rng.uniform(-np.pi, np.pi, block))
     lock_ref = np.exp(1j * rng.uniform(-np.pi, np.pi, block))
     rel = pm * np.conj(lock_ref)                     # the NCO against the lock reference

@@ -136,7 +136,7 @@ the stream is chunked.
 """
 
 import numpy as np
-from numba import njit
+from numba import literally, njit
 
 from ._numeric import SIMD_MATH, half_power, masked_sample, pair_power
 from .design import MAX_UPDATE_BLOCK
@@ -699,21 +699,24 @@ def block_tables(block, ph_re, ph_im, pm_re, pm_im, free_re, free_im, acc1, nco_
 
 
 @njit(cache=True, inline="always", error_model="numpy")
-def detector(xr, xi, g_rms, cap, rot_re, rot_im, q_re, q_im, power):
+def detector(xr, xi, g_rms, cap, rot_re, rot_im, q_re, q_im, power, limited):
     """The M-th power detector on one sample ``x = xr + j xi`` (not a gap): the sample power
     limited to ``cap`` (the sample scaled down to it, phase kept), and ``d = (x_lim g_rms)^M
     e^{-j M point_angle} conj(q)`` against the NCO's ``q = e^{j M theta^}``, with ``rot =
-    e^{-j M point_angle}``. Returns ``(limited power, d re, d im)``."""
+    e^{-j M point_angle}``; ``limited`` False leaves out the limiter (for samples known to
+    be within it). Returns ``(limited power, d re, d im)``."""
     p = xr * xr + xi * xi
-    over = p > cap                                   # selects, not branches: loops vectorise
-    g = g_rms * np.sqrt(cap / p) if over else g_rms
-    p = cap if over else p
+    g = g_rms
+    if limited:
+        over = p > cap                               # selects, not branches: loops vectorise
+        g = g_rms * np.sqrt(cap / p) if over else g_rms
+        p = cap if over else p
     zr, zi = pair_power(xr * g, xi * g, power)
     zr, zi = zr * rot_re - zi * rot_im, zr * rot_im + zi * rot_re
     return p, zr * q_re + zi * q_im, zi * q_re - zr * q_im
 
 
-@njit(cache=True, fastmath=SIMD_MATH, error_model="numpy")
+@njit(cache=True, inline="always")
 def block_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re, rot_im, power):
     """Sums over the samples of one whole update block, given as interleaved float32 I/Q
     ``xs``, against the block's NCO tables ``tabs`` (:func:`block_tables`). Gaps (non-finite
@@ -722,7 +725,50 @@ def block_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re
     (re, im); ``|d|^2``; the lock projection ``(d/|d|) rel`` (re, im); ``rel = P^M conj(ref)``
     (the NCO against the lock reference; re, im); and of the non-gap samples: their count, the count with
     ``|d| > 0``, the limited power ``p``, and with the moment weights ``p``, ``p^2``, 1, and
-    with the level-step weights ``p``."""
+    with the level-step weights ``p``.
+
+    The orders of the package's signals, M = 1, 2, 4 and 8, are summed with M known to the
+    compiler (their powers fold to a few products; M even needs no square root), other M
+    with M at run time. A block is summed without the limiter, and again with it only if a
+    sample was above it (the limiter costs a square root and a division per sample)."""
+    if power == 2:
+        return _sums_of_order(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max,
+                              rot_re, rot_im, 2, power)
+    if power == 4:
+        return _sums_of_order(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max,
+                              rot_re, rot_im, 4, power)
+    if power == 1:
+        return _sums_of_order(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max,
+                              rot_re, rot_im, 1, power)
+    if power == 8:
+        return _sums_of_order(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max,
+                              rot_re, rot_im, 8, power)
+    return _sums_of_order(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max,
+                          rot_re, rot_im, 0, power)
+
+
+@njit(cache=True, inline="always")
+def _sums_of_order(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re, rot_im,
+                   order, power):
+    """:func:`block_sums` for one ``order``: M as a compile-time constant, or 0 for
+    ``power`` at run time."""
+    sums = _detector_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re,
+                          rot_im, order, power, False)
+    if sums[-1] > 0.0:
+        sums = _detector_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max,
+                              rot_re, rot_im, order, power, True)
+    return sums[:-1]
+
+
+@njit(cache=True, fastmath=SIMD_MATH, error_model="numpy")
+def _detector_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re, rot_im,
+                   order, power, limited):
+    """The sums of :func:`block_sums` and, last, the count of samples above the limiter
+    level ``cap``; the limiter is applied if ``limited``. ``order`` and ``limited`` are
+    compiled in (a specialisation for each pair): M is ``order``, or ``power`` if it is 0."""
+    literally(order)
+    literally(limited)
+    power = order if order > 0 else power
     s_e = 0.0
     s_dr = 0.0
     s_di = 0.0
@@ -740,10 +786,13 @@ def block_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re
     s_m4 = 0.0
     s_mw = 0.0
     s_fast = 0.0
+    s_over = 0.0
     g_mag = g_rms * g_rms
     for t in range(xs.shape[0] // 2):
         xr, xi, p, ok = masked_sample(xs, t)
-        p, dr, di = detector(xr, xi, g_rms, cap, rot_re, rot_im, tabs[2, t], tabs[3, t], power)
+        s_over += 1.0 if p > cap else 0.0
+        p, dr, di = detector(xr, xi, g_rms, cap, rot_re, rot_im, tabs[2, t], tabs[3, t], power,
+                             limited)
         p = p if ok else 0.0
         dr = dr if ok else 0.0
         di = di if ok else 0.0
@@ -776,7 +825,7 @@ def block_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re
         s_mw += wm
         s_fast += weights_f[t] * p
     return (s_e, s_dr, s_di, s_ur, s_ui, s_mag2, s_fi, s_fq, s_rr, s_ri, s_valid, s_unit, s_p,
-            s_m2, s_m4, s_mw, s_fast)
+            s_m2, s_m4, s_mw, s_fast, s_over)
 
 
 @njit(cache=True, fastmath=SIMD_MATH, error_model="numpy")
@@ -819,7 +868,7 @@ def diagnostics(xs, ref, freq, err, n0, t0, run, tabs, f_now, g_rms, cap, rot_re
             err[i] = 0.0
             if ok:
                 _, dr, di = detector(xr, xi, g_rms, cap, rot_re, rot_im, tabs[2, t], tabs[3, t],
-                                     power)
+                                     power, True)
                 err[i] = np.arctan2(di, dr) * inv_power
 
 

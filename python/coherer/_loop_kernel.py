@@ -731,44 +731,38 @@ def block_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re
     compiler (their powers fold to a few products; M even needs no square root), other M
     with M at run time. A block is summed without the limiter, and again with it only if a
     sample was above it (the limiter costs a square root and a division per sample)."""
+    block = (xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re, rot_im)
     if power == 2:
-        return _sums_of_order(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max,
-                              rot_re, rot_im, 2, power)
+        return _sums_of_order(block, 2, power)
     if power == 4:
-        return _sums_of_order(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max,
-                              rot_re, rot_im, 4, power)
+        return _sums_of_order(block, 4, power)
     if power == 1:
-        return _sums_of_order(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max,
-                              rot_re, rot_im, 1, power)
+        return _sums_of_order(block, 1, power)
     if power == 8:
-        return _sums_of_order(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max,
-                              rot_re, rot_im, 8, power)
-    return _sums_of_order(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max,
-                          rot_re, rot_im, 0, power)
+        return _sums_of_order(block, 8, power)
+    return _sums_of_order(block, 0, power)
 
 
 @njit(cache=True, inline="always")
-def _sums_of_order(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re, rot_im,
-                   order, power):
-    """:func:`block_sums` for one ``order``: M as a compile-time constant, or 0 for
-    ``power`` at run time."""
-    sums = _detector_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re,
-                          rot_im, order, power, False)
+def _sums_of_order(block, order, power):
+    """:func:`block_sums` of the inputs ``block`` (its arguments but M, as a tuple) for one
+    ``order``: M as a compile-time constant, or 0 for ``power`` at run time."""
+    sums = _detector_sums(block, order, power, False)
     if sums[-1] > 0.0:
-        sums = _detector_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max,
-                              rot_re, rot_im, order, power, True)
+        sums = _detector_sums(block, order, power, True)
     return sums[:-1]
 
 
 @njit(cache=True, fastmath=SIMD_MATH, error_model="numpy")
-def _detector_sums(xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re, rot_im,
-                   order, power, limited):
-    """The sums of :func:`block_sums` and, last, the count of samples above the limiter
-    level ``cap``; the limiter is applied if ``limited``. ``order`` and ``limited`` are
-    compiled in (a specialisation for each pair): M is ``order``, or ``power`` if it is 0."""
+def _detector_sums(block, order, power, limited):
+    """The sums of :func:`block_sums` over the inputs ``block`` and, last, the count of
+    samples above the limiter level ``cap``; the limiter is applied if ``limited``.
+    ``order`` and ``limited`` are compiled in (a specialisation for each pair): M is
+    ``order``, or ``power`` if it is 0."""
     literally(order)
     literally(limited)
     power = order if order > 0 else power
+    xs, tabs, weights_m, weights_f, g_rms, cap, e_gain, e_max, rot_re, rot_im = block
     s_e = 0.0
     s_dr = 0.0
     s_di = 0.0
